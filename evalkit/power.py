@@ -14,7 +14,10 @@ no true difference and ``sqrt(psi - delta**2)`` its standard deviation at ``delt
 
 For scores averaged over several draws (values between 0 and 1) the same formula is the
 normal approximation to the paired t-test when ``psi`` is read as the mean squared
-per-question difference, which equals the discordance when the scores are 0/1.
+per-question difference, which equals the discordance when the scores are 0/1. Pass
+``binary=False`` then: with 0/1 scores a difference can never exceed the discordance, with
+averaged scores it can reach ``sqrt(psi)`` (the formula's own limit, where the per-question
+differences stop varying).
 
 The approximation is rough when fewer than about 10 discordant questions are expected
 (common practice); the exact McNemar test used by :mod:`evalkit.stats` is then conservative.
@@ -53,8 +56,12 @@ def _z(alpha: float, power: float) -> tuple[float, float]:
     return float(norm.ppf(1 - alpha / 2)), float(norm.ppf(power))
 
 
+def _largest(discordance: float, binary: bool) -> float:
+    return discordance if binary else math.sqrt(discordance)
+
+
 def minimum_detectable_difference(
-    n: int, discordance: float, alpha: float = 0.05, power: float = 0.8
+    n: int, discordance: float, alpha: float = 0.05, power: float = 0.8, binary: bool = True
 ) -> float:
     """Smallest true difference (as a share, 0.05 = 5 points) that ``n`` paired questions detect
     with the given power by a two-sided test at ``alpha``, for this discordance.
@@ -62,7 +69,8 @@ def minimum_detectable_difference(
     Solves Connor's (1987) normal-approximation formula (module docstring) for the difference
     with :func:`scipy.optimize.brentq`. Returns ``nan`` when no difference up to the
     discordance itself is detectable (a difference cannot exceed the discordance) or when the
-    discordance is 0 (the settings never disagree, so nothing can be told apart).
+    discordance is 0 (the settings never disagree, so nothing can be told apart). For scores
+    averaged over draws pass ``binary=False`` (module docstring).
     """
     _check_levels(alpha, power)
     if n < 1:
@@ -76,26 +84,29 @@ def minimum_detectable_difference(
     def gap(delta: float) -> float:
         return math.sqrt(n) * delta - z_a * math.sqrt(psi) - z_b * math.sqrt(max(psi - delta**2, 0.0))
 
-    # gap rises with delta on (0, psi]; gap(0) < 0, so a root exists iff gap(psi) >= 0.
-    if gap(psi) < 0:
+    # gap rises with delta up to the largest possible difference and gap(0) < 0, so a root
+    # exists iff gap is non-negative there.
+    top = _largest(psi, binary)
+    if gap(top) < 0:
         return math.nan
-    return float(brentq(gap, 0.0, psi, xtol=1e-12))
+    return float(brentq(gap, 0.0, top, xtol=1e-12))
 
 
 def questions_needed(
-    difference: float, discordance: float, alpha: float = 0.05, power: float = 0.8
+    difference: float, discordance: float, alpha: float = 0.05, power: float = 0.8, binary: bool = True
 ) -> int:
     """Number of paired questions needed to detect ``difference`` with the given power
-    (Connor 1987 normal approximation, rounded up)."""
+    (Connor 1987 normal approximation, rounded up; ``binary=False`` for averaged scores)."""
     _check_levels(alpha, power)
     _check_discordance(discordance)
     delta = abs(float(difference))
     if delta == 0:
         raise EvalkitError("difference: 0 cannot be detected; give the smallest difference that matters, e.g. 0.05")
-    if delta > discordance:
+    if delta > _largest(discordance, binary):
+        limit = "psi" if binary else "sqrt(psi), psi being the mean squared per-question difference"
         raise EvalkitError(
-            f"difference: {delta:g} is larger than the discordance {discordance:g}; two settings "
-            "that disagree on a share psi of questions cannot differ in accuracy by more than psi"
+            f"difference: {delta:g} is not possible with discordance {discordance:g}; two settings "
+            f"that disagree on a share psi of questions cannot differ in accuracy by more than {limit}"
         )
     z_a, z_b = _z(alpha, power)
     n = (z_a * math.sqrt(discordance) + z_b * math.sqrt(discordance - delta**2)) ** 2 / delta**2

@@ -7,7 +7,7 @@ from functools import lru_cache
 
 import numpy as np
 import pytest
-from scipy.stats import binomtest, norm
+from scipy.stats import binomtest, norm, ttest_1samp
 
 from evalkit.errors import EvalkitError
 from evalkit.power import minimum_detectable_difference, plan, questions_needed
@@ -30,6 +30,20 @@ def test_exact_mcnemar_detects_the_minimum_detectable_difference_about_80_percen
     # The formula is a normal approximation and the exact test is conservative, so the
     # simulated power sits a little under 0.8; the 0.72-0.88 band is the acceptance range.
     assert 0.72 <= np.mean(detected) <= 0.88
+
+
+def test_paired_t_test_detects_the_averaged_score_mdd_about_80_percent():
+    # Scores averaged over three draws: per-question differences in {-1/3, 0, 1/3}. With
+    # psi = E[d^2] = 0.04 the difference may exceed psi, which only binary=False allows.
+    n, psi = 80, 0.04
+    assert math.isnan(minimum_detectable_difference(n, psi))
+    delta = minimum_detectable_difference(n, psi, binary=False)
+    assert psi < delta < math.sqrt(psi)
+    up, down = (9 * psi + 3 * delta) / 2, (9 * psi - 3 * delta) / 2  # so E[d] = delta, E[d^2] = psi
+    rng = np.random.default_rng(7)
+    d = rng.choice([1 / 3, -1 / 3, 0.0], p=[up, down, 1 - up - down], size=(2000, n))
+    detected = ttest_1samp(d, 0.0, axis=1).pvalue < 0.05  # scipy as the reference test
+    assert 0.72 <= detected.mean() <= 0.88
 
 
 def test_questions_needed_matches_connors_formula_on_a_hand_worked_case():
@@ -86,6 +100,7 @@ def test_plan_with_a_pilot_discordance_needs_fewer_questions():
     "call",
     [
         lambda: questions_needed(0.3, 0.2),
+        lambda: questions_needed(0.5, 0.2, binary=False),
         lambda: questions_needed(0.0, 0.2),
         lambda: questions_needed(0.05, 1.5),
         lambda: plan(accuracy=0.95, difference=0.1),
