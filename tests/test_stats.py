@@ -93,6 +93,15 @@ def test_unusable_scores_raise_data_errors(a, b):
         paired_comparison(a, b)
 
 
+def test_questions_without_a_group_are_clusters_of_their_own():
+    rng = np.random.default_rng(5)
+    a, b = rng.random(40) < 0.4, rng.random(40) < 0.6
+    labelled = paired_comparison(a, b, groups=[f"g{i}" for i in range(40)], n_boot=99)
+    missing = paired_comparison(a, b, groups=[None] * 20 + [f"g{i}" for i in range(20)], n_boot=99)
+    assert missing.n_clusters == 40
+    assert missing.cluster_se == pytest.approx(labelled.cluster_se)
+
+
 def test_holm_on_a_hand_worked_example():
     # Holm (1979), Scand. J. Statist. 6:65-70: sort, multiply the i-th smallest by (m - i + 1),
     # carry the running maximum. By hand for m = 4:
