@@ -1,0 +1,175 @@
+"""The `evalkit` command: a thin typer shell over evalkit's library functions."""
+
+from __future__ import annotations
+
+import functools
+import sys
+from pathlib import Path
+from typing import List, Optional
+
+import typer
+from rich.console import Console
+from rich.table import Table
+
+from .errors import EvalkitError
+
+app = typer.Typer(
+    name="evalkit",
+    help="Compare prompting styles and model sizes on reasoning tasks, with audited chains and honest statistics.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+out = Console()
+err = Console(stderr=True)
+_state = {"debug": False}
+
+
+@app.callback()
+def _main(debug: bool = typer.Option(False, "--debug", help="Show full tracebacks for errors.")) -> None:
+    _state["debug"] = debug
+
+
+def command(fn):
+    """Register a command whose user errors print one line and exit 2."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        try:
+            return fn(*args, **kwargs)
+        except EvalkitError as e:
+            if _state["debug"]:
+                raise
+            err.print(f"error: {e}", markup=False, highlight=False, soft_wrap=True)
+            raise typer.Exit(2)
+        except KeyboardInterrupt:
+            err.print("interrupted; finished records are in the store, run the same command to resume")
+            raise typer.Exit(130)
+
+    return app.command()(wrapper)
+
+
+def _summary_table(summary) -> Table:
+    t = Table(title="accuracy per condition (95% Wilson interval)")
+    for col, justify in (("model", "left"), ("style", "left"), ("shots", "right"), ("draw", "right"),
+                         ("accuracy", "right"), ("95% interval", "left"), ("n", "right"), ("no answer", "right")):
+        t.add_column(col, justify=justify)
+    for r in summary.itertuples():
+        t.add_row(r.model, r.style, str(r.shots), str(r.draw), f"{100 * r.accuracy:.1f}%",
+                  f"[{100 * r.ci_low:.1f}, {100 * r.ci_high:.1f}]", str(r.n), str(r.no_answer))
+    return t
+
+
+def _print_run(run) -> None:
+    out.print(_summary_table(run.summary))
+    try:
+        from .stats import compare
+
+        table = compare(run.records)
+        for v in table["verdict"]:
+            out.print(f"• {v}", highlight=False)
+    except ImportError:
+        pass
+    c = run.counts or {}
+    out.print(f"{len(run.records)} records ({c.get('generated', 0)} generated, {c.get('cached', 0)} from the "
+              f"cache, {c.get('resumed', 0)} already in the store) in {run.seconds or 0:.1f} s")
+    out.print(f"run folder: {run.folder}\nreport: {run.report_path}", highlight=False)
+
+
+_MODEL = typer.Option(None, "--model", "-m", help="Model reference (repeatable): packaged name, .gguf file, folder or hub id.")
+_STYLE = typer.Option(None, "--style", "-s", help="Style (repeatable): direct, worked, worked-zero.")
+_SHOTS = typer.Option(None, "--shots", "-k", help="Exemplars per prompt (repeatable).")
+
+
+@command
+def demo(
+    limit: Optional[int] = typer.Option(None, help="Score only the first N questions."),
+    out_dir: Optional[Path] = typer.Option(None, "--out", help="Run folder (default: results/demo-<time>)."),
+    no_cache: bool = typer.Option(False, "--no-cache", help="Ignore and do not fill the generation cache."),
+) -> None:
+    """Run the bundled workshop task on SmolLM2-135M, direct vs worked prompting."""
+    from . import api
+
+    _print_run(api.run(api.demo_study(limit=limit), out=out_dir, use_cache=not no_cache))
+
+
+@command
+def run(
+    target: Path = typer.Argument(..., help="A study file, or a task spec (then give --model)."),
+    model: Optional[List[str]] = _MODEL,
+    style: Optional[List[str]] = _STYLE,
+    shots: Optional[List[int]] = _SHOTS,
+    draws: Optional[int] = typer.Option(None, help="Exemplar draws per style and shot count."),
+    limit: Optional[int] = typer.Option(None, help="Score only the first N questions of each task."),
+    seed: Optional[int] = typer.Option(None, help="Seed of the exemplar draws."),
+    dtype: Optional[str] = typer.Option(None, help="float32 (default) or bfloat16 (faster, changes answers)."),
+    batch_size: Optional[int] = typer.Option(None, help="Override the adaptive batch size."),
+    threads: Optional[int] = typer.Option(None, help="Torch CPU threads (default: all cores)."),
+    out_dir: Optional[Path] = typer.Option(None, "--out", help="Run folder; an existing one is resumed."),
+    no_cache: bool = typer.Option(False, "--no-cache", help="Ignore and do not fill the generation cache."),
+) -> None:
+    """Run a study (or one task on some models) into a run folder and report."""
+    from . import api
+
+    study = api.study_for(target, model or (), style or (), shots or (), draws, limit, seed,
+                          dtype=dtype, batch_size=batch_size, threads=threads)
+    _print_run(api.run(study, out=out_dir, use_cache=not no_cache))
+
+
+@command
+def check(spec: Path = typer.Argument(..., help="Task spec file (TOML).")) -> None:
+    """Validate a task spec and its data: fields, ids, exemplar leaks."""
+    from . import api
+
+    task = api.check(spec)
+    out.print(f"{spec}: ok: task '{task.spec.name}', {len(task.questions)} questions, "
+              f"{len(task.exemplars)} exemplars, answer kind {task.spec.answer.kind}", highlight=False)
+
+
+@command
+def preview(
+    spec: Path = typer.Argument(..., help="Task spec file (TOML)."),
+    style: str = typer.Option("worked", "--style", "-s", help="direct, worked or worked-zero."),
+    shots: int = typer.Option(4, "--shots", "-k"),
+    draw: int = typer.Option(0, help="Which exemplar draw."),
+    seed: int = typer.Option(0, help="Seed of the exemplar draws."),
+    question: Optional[str] = typer.Option(None, "--question", "-q", help="Question id or index (default: the first)."),
+    model: Optional[str] = typer.Option(None, "--model", "-m", help="Apply this model's chat template."),
+) -> None:
+    """Show exactly the text a model will see for one question."""
+    from . import api
+
+    text = api.preview(spec, style=style, shots=shots, draw=draw, seed=seed, question=question, model=model)
+    if model is None:
+        err.print("(plain text; pass --model to see it inside the model's chat template)")
+    sys.stdout.write(text + "\n")
+
+
+@command
+def report(run_dir: Path = typer.Argument(..., help="A run folder.")) -> None:
+    """Rewrite a run's report and exports from its store, and print its summary."""
+    from .report.markdown import write_report
+    from .run import export_records, load_run
+
+    r = load_run(run_dir)
+    export_records(r.folder, r.records)
+    write_report(r)
+    _print_run(r)
+
+
+@command
+def models() -> None:
+    """List the models evalkit knows and whether they are present in the cache."""
+    from .models import list_models
+
+    df = list_models()
+    t = Table(title="models")
+    for col in df.columns:
+        t.add_column(str(col))
+    for row in df.itertuples(index=False):
+        t.add_row(*["" if v is None else str(v) for v in row])
+    out.print(t)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    app()
