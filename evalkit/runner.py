@@ -230,6 +230,11 @@ def run_study(study: Study, out: str | Path | None = None, backend_factory: Back
     planned = expand(study, tasks)
     if not planned:
         raise EvalkitError("the study expands to no conditions; check its styles and shots")
+    if backend_factory is None:
+        from .models import resolve
+
+        for model in study.models:  # a bad reference fails before anything is written
+            resolve(model)
     run_dir, store, manifest = open_run_folder(study, tasks, out)
     started = time.perf_counter()
     backends: dict[str, dict] = {}
