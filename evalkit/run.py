@@ -93,9 +93,14 @@ def summarise(records: pd.DataFrame, alpha: float = 0.05) -> pd.DataFrame:
 
 def export_records(run_dir: Path, records: pd.DataFrame) -> list[Path]:
     """records.csv and records.parquet beside the store."""
+    import json
+
     csv, parquet = run_dir / "records.csv", run_dir / "records.parquet"
-    records.to_csv(csv, index=False)
-    records.to_parquet(parquet, index=False)
+    flat = records.copy()
+    if "extra" in flat:  # nested backend facts travel as JSON text in flat files
+        flat["extra"] = flat["extra"].map(lambda d: json.dumps(d, sort_keys=True))
+    flat.to_csv(csv, index=False)
+    flat.to_parquet(parquet, index=False)
     return [csv, parquet]
 
 

@@ -6,6 +6,7 @@ whose completion is in the generation cache is not sent to the model again.
 
 from __future__ import annotations
 
+import functools
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -22,6 +23,7 @@ from .store import GenerationCache, Record, RunStore, cache_key
 __all__ = ["PlannedCondition", "expand", "run_study", "BackendFactory", "default_cache_path"]
 
 BackendFactory = Callable[[str, Study], Backend]
+REASONING_STYLES = ("worked", "worked-zero")
 
 
 @dataclass
@@ -69,13 +71,14 @@ def expand(study: Study, tasks: list[TaskData] | None = None) -> list[PlannedCon
                 shot_list = [0] if style == "worked-zero" else study.shots
                 for shots in shot_list:
                     for draw in range(study.draws if shots > 0 else 1):
-                        cond = Condition(task=task.spec.name, model=model, style=style, shots=shots,
-                                         draw=draw, seed=study.seed)
-                        if cond.id in seen:
-                            continue
-                        seen.add(cond.id)
                         ex = draw_exemplars(task.exemplars, shots, study.seed, draw)
-                        planned.append(PlannedCondition(cond, task, ex, questions))
+                        calc = (False, True) if study.calculator and style in REASONING_STYLES else (False,)
+                        for calculator in calc:
+                            cond = Condition(task=task.spec.name, model=model, style=style, shots=shots,
+                                             draw=draw, seed=study.seed, calculator=calculator)
+                            if cond.id not in seen:
+                                seen.add(cond.id)
+                                planned.append(PlannedCondition(cond, task, ex, questions))
     return planned
 
 
@@ -89,6 +92,7 @@ def _settings(pc: PlannedCondition, study: Study, backend_info: dict) -> dict:
         "dtype": study.decoding.dtype,
         "model_sha256": backend_info.get("sha256"),
         "answer": pc.task.spec.answer.model_dump(),
+        "calculator": pc.condition.calculator,
     }
 
 
@@ -145,7 +149,7 @@ def _record(pc: PlannedCondition, q, prompt: str, c: Completion, cached: bool) -
         prompt_sha=sha256_text(prompt), prompt=prompt, completion=c.text,
         extracted=extraction.value, extracted_raw=extraction.raw, method=extraction.method,
         correct=bool(ok), outcome=outcome, prompt_tokens=c.prompt_tokens, new_tokens=c.new_tokens,
-        seconds=c.seconds, min_margin=c.min_margin, finish=c.finish, cached=cached,
+        seconds=c.seconds, min_margin=c.min_margin, finish=c.finish, cached=cached, extra=c.extra,
     )
 
 
@@ -173,7 +177,7 @@ def run_conditions(store: RunStore, study: Study, planned: Iterable[PlannedCondi
                 cond = pc.condition
                 bar.describe(f"{model} {cond.style} {cond.shots}-shot d{cond.draw} ({i}/{len(conds)})")
                 settings = _settings(pc, study, info)
-                store.add_condition(pc.id, cond.label, cond.task, cond.model, cond.style, cond.shots,
+                store.add_condition(pc.id, cond.label, cond.task, cond.model, cond.arm, cond.shots,
                                     cond.draw, cond.seed, settings)
                 done = store.done_ids(pc.id)
                 pending = []
@@ -185,7 +189,8 @@ def run_conditions(store: RunStore, study: Study, planned: Iterable[PlannedCondi
                     text = render(pc.task, cond.style, pc.exemplars, q.question, chat=backend.chat)
                     prompt = backend.format_prompt(text)
                     key = cache_key(str(info.get("sha256")), study.decoding.dtype, prompt,
-                                    settings["max_new_tokens"], settings["stop"])
+                                    settings["max_new_tokens"], settings["stop"],
+                                    mode="calculator" if cond.calculator else "greedy")
                     hit = cache.get(key) if cache is not None else None
                     if hit is not None:
                         c = Completion(text=hit["completion"], prompt_tokens=hit["prompt_tokens"],
@@ -208,8 +213,13 @@ def run_conditions(store: RunStore, study: Study, planned: Iterable[PlannedCondi
                     counts["generated"] += 1
                     bar.advance(True)
 
-                backend.generate([p for _, p, _ in pending], max_new_tokens=settings["max_new_tokens"],
-                                 stop=settings["stop"], on_result=on_result)
+                generate = backend.generate
+                if cond.calculator:
+                    from .calculator import calculator_generate
+
+                    generate = functools.partial(calculator_generate, backend)
+                generate([p for _, p, _ in pending], max_new_tokens=settings["max_new_tokens"],
+                         stop=settings["stop"], on_result=on_result)
             close = getattr(backend, "close", None)
             if close:
                 close()

@@ -162,6 +162,7 @@ class Study(_Strict):
     draws: int = Field(1, ge=1, description="exemplar draws per (style, shots), each from its own seed")
     seed: int = 0
     limit: int | None = Field(None, ge=1, description="score only the first N questions of each task")
+    calculator: bool = Field(False, description="also run each reasoning style with the calculator in the loop")
     decoding: Decoding = Decoding()
 
     source_file: Path | None = Field(None, exclude=True)
@@ -195,15 +196,23 @@ class Condition(_Strict):
     shots: int
     draw: int
     seed: int
+    calculator: bool = False
 
     @property
     def id(self) -> str:
         key = f"{self.task}|{self.model}|{self.style}|{self.shots}|{self.draw}|{self.seed}"
+        if self.calculator:
+            key += "|calculator"
         return hashlib.sha256(key.encode()).hexdigest()[:12]
 
     @property
+    def arm(self) -> str:
+        """The style as reports name it: ``worked+calculator`` when the calculator is on."""
+        return f"{self.style}+calculator" if self.calculator else self.style
+
+    @property
     def label(self) -> str:
-        return f"{self.model} | {self.style} | {self.shots}-shot | draw {self.draw}"
+        return f"{self.model} | {self.arm} | {self.shots}-shot | draw {self.draw}"
 
 
 def _format_error(path: Path, err: ValidationError) -> SpecError:

@@ -11,7 +11,7 @@ import json
 import sqlite3
 import time
 from contextlib import closing
-from dataclasses import asdict, dataclass, fields
+from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
 from typing import Iterable, Iterator
 
@@ -55,6 +55,7 @@ CREATE TABLE IF NOT EXISTS records (
     min_margin REAL,
     finish TEXT NOT NULL,
     cached INTEGER NOT NULL,
+    extra TEXT NOT NULL DEFAULT '{}',   -- JSON: backend facts, e.g. calculator interventions
     created REAL NOT NULL,
     PRIMARY KEY (condition_id, question_id)
 );
@@ -91,6 +92,7 @@ class Record:
     min_margin: float | None
     finish: str
     cached: bool
+    extra: dict = field(default_factory=dict)
     created: float = 0.0
 
 
@@ -192,6 +194,7 @@ class RunStore:
         values["created"] = values["created"] or time.time()
         values["correct"] = int(values["correct"])
         values["cached"] = int(values["cached"])
+        values["extra"] = json.dumps(values["extra"], sort_keys=True)
         with self.con:
             self.con.execute(
                 f"INSERT OR REPLACE INTO records ({', '.join(_RECORD_FIELDS)}) "
@@ -204,6 +207,7 @@ class RunStore:
         for row in cur:
             d = dict(zip(_RECORD_FIELDS, row))
             d["correct"], d["cached"] = bool(d["correct"]), bool(d["cached"])
+            d["extra"] = json.loads(d["extra"])
             yield Record(**d)
 
     def records(self):
@@ -217,6 +221,7 @@ class RunStore:
         )
         df["correct"] = df["correct"].astype(bool)
         df["cached"] = df["cached"].astype(bool)
+        df["extra"] = df["extra"].map(json.loads)
         return df.rename(columns={"grp": "group"})
 
     def count(self) -> int:
