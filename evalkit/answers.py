@@ -40,7 +40,9 @@ kind="number":
    phrase starts after the cue (skipping spaces, newlines, ``*``, ``_`` and ``:``) and runs to the
    end of its sentence (a newline, or ``. ! ? ;`` followed by a space or the end), at most 160
    characters; for ``####`` it is the rest of the line, for ``\\boxed`` the braces' content. The
-   phrase's FIRST number is the answer. A cue whose phrase holds no number is passed over.
+   phrase's FIRST number is the answer, except that when the phrase holds ``=`` followed by a
+   number, the first number after its last ``=`` is ("The answer is 12 + 30 = 42" gives 42). A
+   cue whose phrase holds no number is passed over.
    "So the total is" and a closing ``= X`` are deliberately not cues: chains state intermediate
    totals that way; the fallback reads them when they come last.
 2. ``last-number``: the last number in the cut text, digits or words. A lone word ``one`` counts
@@ -56,7 +58,8 @@ kind="choice" (letters A-E, or as many letters as ``choices`` has):
    ``(a)`` is left alone: chains enumerate with it); else an upper-case letter opening the text
    and followed by ``)``, ``.``, ``:`` or the end (``B) 12``, ``B.``, ``B``; not "A mechanic...").
 3. ``text``: with ``choices``, the choice whose normalised text occurs (as whole words) latest in
-   the normalised text; span is None (positions in normalised text are not the original's).
+   the normalised text; raw is that choice's text and span is None (positions in normalised text
+   are not the original's).
 4. ``none``. The value is the upper-case letter.
 
 kind="text": ``stated`` is the last cue's phrase, normalised, when not empty; else ``text``, the
@@ -387,6 +390,9 @@ def _phrases(text: str, start: int, end: int) -> list[tuple[int, int]]:
 
 def _number_extraction(text: str, start: int, end: int) -> Extraction:
     for ps, pe in reversed(_phrases(text, start, end)):
+        eq = text.rfind("=", ps, pe)
+        if eq >= 0 and _numbers(text[eq + 1:pe]):
+            ps = eq + 1  # "The answer is 12 + 30 = 42": the result, not the first operand
         nums = _numbers(text[ps:pe])
         if nums:
             s, e, v, _ = nums[0]

@@ -44,6 +44,8 @@ NUMBER_FORMS = [
     ("The answer is -5.", "-5", "stated"),
     ("The answer is 25%.", "25", "stated"),
     ("The answer is 1/3", "1/3", "stated"),
+    ("The answer is 12 + 30 = 42.", "42", "stated"),
+    ("\\boxed{3 \\times 14 = 42}", "42", "stated"),
     ("He spends 2 hours, then 3 more: 2 + 3 = 5", "5", "last-number"),
     ("42", "42", "last-number"),
     ("Seven.", "7", "last-number"),
