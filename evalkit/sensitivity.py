@@ -13,21 +13,11 @@ import pandas as pd
 from statsmodels.stats.contingency_tables import cochrans_q
 
 from evalkit.errors import DataError
-from evalkit.stats import setting_label
+from evalkit.stats import scored_records, setting_label
 
 __all__ = ["draw_spread", "variance_components"]
 
 _SETTING = ["task", "model", "style", "shots"]
-_REQUIRED = (*_SETTING, "draw", "question_id", "correct")
-
-
-def _checked(records: pd.DataFrame) -> pd.DataFrame:
-    missing = [c for c in _REQUIRED if c not in records.columns]
-    if missing:
-        raise DataError(f"records: missing column(s) {', '.join(missing)}; expected {', '.join(_REQUIRED)}")
-    if records["correct"].isna().any():
-        raise DataError("records: column 'correct' has missing values; score every record first")
-    return records.assign(score=records["correct"].astype(float))
 
 
 def _settings(df: pd.DataFrame):
@@ -38,7 +28,7 @@ def _settings(df: pd.DataFrame):
 def draw_spread(records: pd.DataFrame) -> pd.DataFrame:
     """Per setting: how accuracy varies across its draws (min, median, max, standard deviation)."""
     out = []
-    for key, rows in _settings(_checked(records)):
+    for key, rows in _settings(scored_records(records)):
         per_draw = rows.groupby("draw")["score"].mean()
         out.append(dict(
             **key,
@@ -103,7 +93,7 @@ def variance_components(records: pd.DataFrame, alpha: float = 0.05) -> pd.DataFr
     conclusion drawn from one draw may not survive another exemplar choice.
     """
     out = []
-    for key, rows in _settings(_checked(records)):
+    for key, rows in _settings(scored_records(records)):
         if rows["draw"].nunique() < 2:
             continue
         table = rows.groupby(["question_id", "draw"])["score"].mean().unstack("draw").dropna()

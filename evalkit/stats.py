@@ -32,6 +32,7 @@ __all__ = [
     "verdict_sentence",
     "compare",
     "setting_label",
+    "scored_records",
 ]
 
 _CONFINT_METHODS = {"wilson": "wilson", "exact": "beta"}  # "beta" is Clopper-Pearson in statsmodels
@@ -286,15 +287,19 @@ def setting_label(model: str, style: str, shots: int) -> str:
 _REQUIRED = ("task", "model", "style", "shots", "draw", "question_id", "correct")
 
 
-def _question_scores(records: pd.DataFrame) -> dict:
+def scored_records(records: pd.DataFrame) -> pd.DataFrame:
+    """Check a records frame has what the statistics need; add a float ``score`` column."""
     missing = [c for c in _REQUIRED if c not in records.columns]
     if missing:
         raise DataError(f"records: missing column(s) {', '.join(missing)}; expected {', '.join(_REQUIRED)}")
     if records["correct"].isna().any():
-        raise DataError("records: column 'correct' has missing values; score every record before comparing")
+        raise DataError("records: column 'correct' has missing values; score every record first")
     df = records.assign(score=records["correct"].astype(float))
-    if "group" not in df.columns:
-        df = df.assign(group=None)
+    return df if "group" in df.columns else df.assign(group=None)
+
+
+def _question_scores(records: pd.DataFrame) -> dict:
+    df = scored_records(records)
     out = {}
     for (task, model, style, shots), rows in df.groupby(["task", "model", "style", "shots"], sort=True):
         by_q = rows.groupby("question_id", sort=True)
