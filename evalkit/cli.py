@@ -73,7 +73,7 @@ def _print_run(run) -> None:
     c = run.counts or {}
     out.print(f"{len(run.records)} records ({c.get('generated', 0)} generated, {c.get('cached', 0)} from the "
               f"cache, {c.get('resumed', 0)} already in the store) in {run.seconds or 0:.1f} s")
-    out.print(f"run folder: {run.folder}\nreport: {run.report_path}", highlight=False)
+    out.print(f"run folder: {run.folder}\nreport: {run.report_path} and {run.html_path}", highlight=False)
 
 
 _MODEL = typer.Option(None, "--model", "-m", help="Model reference (repeatable): packaged name, .gguf file, folder or hub id.")
@@ -147,13 +147,13 @@ def preview(
 
 @command
 def report(run_dir: Path = typer.Argument(..., help="A run folder.")) -> None:
-    """Rewrite a run's report and exports from its store, and print its summary."""
-    from .report.markdown import write_report
+    """Rewrite a run's reports (Markdown, HTML, plots) and exports from its store."""
+    from .report.build import write_reports
     from .run import export_records, load_run
 
     r = load_run(run_dir)
     export_records(r.folder, r.records)
-    write_report(r)
+    write_reports(r)
     _print_run(r)
 
 

@@ -19,6 +19,7 @@ __all__ = ["Run", "open_run_folder", "finish_run", "load_run", "summarise", "exp
 
 DEFAULT_RESULTS = Path("results")
 REPORT_NAME = "report.md"
+HTML_NAME = "report.html"
 
 # Columns whose values depend only on the inputs; wall time and timestamps do not.
 DETERMINISTIC = ["condition", "question_id", "prompt_sha", "completion", "extracted", "method",
@@ -39,6 +40,10 @@ class Run:
     @property
     def report_path(self) -> Path:
         return self.folder / REPORT_NAME
+
+    @property
+    def html_path(self) -> Path:
+        return self.folder / HTML_NAME
 
 
 def open_run_folder(study: Study, tasks: list[TaskData], out: str | Path | None) -> tuple[Path, RunStore, dict]:
@@ -106,7 +111,7 @@ def export_records(run_dir: Path, records: pd.DataFrame) -> list[Path]:
 
 def finish_run(run_dir: Path, manifest: dict, backends: dict[str, dict], counts: dict, seconds: float) -> Run:
     """Exports, the completed manifest and the Markdown report."""
-    from .report.markdown import write_report
+    from .report.build import write_reports
 
     manifest["models"].update(backends)
     manifest["finished"] = time.strftime("%Y-%m-%dT%H:%M:%S%z")
@@ -117,7 +122,7 @@ def finish_run(run_dir: Path, manifest: dict, backends: dict[str, dict], counts:
     write_manifest(run_dir, manifest)
     export_records(run_dir, records)
     run = Run(run_dir, manifest, records, summarise(records), counts, seconds)
-    write_report(run)
+    write_reports(run)
     return run
 
 

@@ -1,16 +1,24 @@
-"""The Markdown report of a run: accuracy per condition with intervals, paired comparisons."""
+"""The Markdown report of a run (for pull requests): accuracy with intervals, paired verdicts,
+draw sensitivity, compute, and the chain audit."""
 
 from __future__ import annotations
 
+from collections import Counter
 from pathlib import Path
 
 import pandas as pd
 
-__all__ = ["render_report", "write_report", "accuracy_table"]
+__all__ = ["render_report", "write_report", "accuracy_table", "REPORT_NAME"]
+
+REPORT_NAME = "report.md"
 
 
 def _pct(x: float) -> str:
     return f"{100 * x:.1f}"
+
+
+def _cell(text) -> str:
+    return str(text).replace("|", "\\|").replace("\n", " ")
 
 
 def accuracy_table(summary: pd.DataFrame) -> str:
@@ -27,51 +35,122 @@ def accuracy_table(summary: pd.DataFrame) -> str:
     return "\n".join(lines)
 
 
-def _comparisons(records: pd.DataFrame) -> list[str]:
-    from ..stats import compare
-
-    table = compare(records)
-    if table.empty:
+def _comparison_section(table: pd.DataFrame | None) -> list[str]:
+    if table is None or table.empty:
         return []
     out = ["## Paired comparisons", "",
-           "Each pair of conditions is compared on the same questions. The interval is the 95% confidence "
-           "interval of the paired difference; p is McNemar's exact test on the discordant questions "
-           "(Holm-adjusted across this table). A difference is called real only when the adjusted p is "
-           "below 0.05 and the interval excludes zero.", ""]
+           "Each pair of settings is compared on the same questions: difference b − a with the 95% interval of "
+           "the paired differences; McNemar's exact test on the discordant questions when both sides have one "
+           "draw (a paired t-test on draw-averaged scores otherwise); Holm-adjusted across this table. A "
+           "difference is called real only when the adjusted p is below 0.05 and the interval excludes zero.", ""]
+    out += [f"- {_cell(v)}" for v in table["verdict"]]
+    out += ["", "| a | b | n | difference (points) | 95% interval | p (Holm) | detectable at 80% power |",
+            "| --- | --- | ---: | ---: | --- | ---: | ---: |"]
     for r in table.itertuples():
-        out.append(f"- {r.verdict}")
+        out.append(f"| {_cell(r.label_a)} | {_cell(r.label_b)} | {r.n} | {100 * r.difference:+.1f} | "
+                   f"[{_pct(r.ci_low)}, {_pct(r.ci_high)}] | {r.p_holm:.3g} | {_pct(r.mdd_80)} points |")
+    return out + ["", "Forest plot: `plots/comparisons.svg`.", ""]
+
+
+def _spread_section(spread: pd.DataFrame | None, components: pd.DataFrame | None) -> list[str]:
+    if spread is None or spread.empty:
+        return []
+    out = ["## Exemplar sensitivity", "",
+           "Accuracy across exemplar draws (different exemplars and orders from different seeds).", ""]
+    cols = [c for c in spread.columns]
+    out.append("| " + " | ".join(cols) + " |")
+    out.append("| " + " | ".join("---" for _ in cols) + " |")
+    for row in spread.itertuples(index=False):
+        out.append("| " + " | ".join(_cell(f"{v:.3f}" if isinstance(v, float) else v) for v in row) + " |")
+    if components is not None and not components.empty:
+        out += ["", "Variance of per-record scores split into draw and question parts:", ""]
+        cols = list(components.columns)
+        out.append("| " + " | ".join(cols) + " |")
+        out.append("| " + " | ".join("---" for _ in cols) + " |")
+        for row in components.itertuples(index=False):
+            out.append("| " + " | ".join(_cell(f"{v:.3f}" if isinstance(v, float) else v) for v in row) + " |")
     return out + [""]
 
 
-def render_report(run) -> str:
+def _cost_section(costs: pd.DataFrame, cheapest: str | None) -> list[str]:
+    from ..compute import FLOPS_FORMULA
+
+    if costs.empty or costs["flops"].isna().all():
+        return []
+    out = ["## Compute", "", f"{FLOPS_FORMULA}.", "",
+           "| condition | parameters | prompt tokens | generated tokens | est. FLOPs | seconds |",
+           "| --- | ---: | ---: | ---: | ---: | ---: |"]
+    for r in costs.itertuples():
+        params = f"{int(r.parameters):,}" if pd.notna(r.parameters) else "?"
+        out.append(f"| {_cell(r.condition)} | {params} | {r.prompt_tokens:,} | {r.new_tokens:,} | {r.flops:.2e} | {r.seconds:.1f} |")
+    if cheapest:
+        out += ["", f"Cheapest condition whose accuracy is within the 95% interval of the best: **{_cell(cheapest)}** "
+                "(a screening rule, not a test of equivalence)."]
+    return out + ["", "Plots: `plots/accuracy-vs-size.svg`, `plots/accuracy-vs-compute.svg`.", ""]
+
+
+def _audit_section(run, verdicts: pd.DataFrame | None) -> list[str]:
+    if verdicts is None or verdicts.empty:
+        return []
+    labels = run.records.drop_duplicates("condition_id").set_index("condition_id")["condition"]
+    names = sorted(verdicts["verdict"].unique())
+    out = ["## Chain audit", "", "Verdicts per reasoning condition (see docs/AUDIT.md for how each is decided).", "",
+           "| condition | " + " | ".join(names) + " |", "| --- |" + " ---: |" * len(names)]
+    for cid, g in verdicts.groupby("condition_id", sort=False):
+        counts = g["verdict"].value_counts()
+        out.append(f"| {_cell(labels.get(cid, cid))} | " + " | ".join(str(counts.get(n, 0)) for n in names) + " |")
+    slips: Counter = Counter()
+    examples = []
+    completions = run.records.set_index(["condition_id", "question_id"])["completion"]
+    for v in verdicts.itertuples():
+        wrong = [s for s in v.detail.get("steps", []) if not s.get("holds")]
+        for s in wrong:
+            slips[f"{s['expression']} = {s['claimed']} (true {s['value']})"] += 1
+        if wrong and len(examples) < 3 and v.verdict in ("slip", "lucky", "unrepaired"):
+            text = completions.get((v.condition_id, v.question_id), "")
+            s = wrong[0]
+            marked = text[: s["start"]] + "⟦" + text[s["start"]: s["end"]] + "⟧" + text[s["end"]:]
+            examples.append(f"- *{v.verdict}*, {labels.get(v.condition_id, '')}, question `{v.question_id}`: "
+                            f"{_cell(marked.strip())[:600]}")
+    if slips:
+        out += ["", "Most common wrong steps:", ""]
+        out += [f"- `{k}`: {n}×" for k, n in slips.most_common(5)]
+    if examples:
+        out += ["", "Examples (the wrong step in ⟦ ⟧):", ""] + examples
+    return out + [""]
+
+
+def render_report(run, parts=None) -> str:
     """The report's Markdown text."""
+    if parts is None:
+        from .build import report_parts
+
+        parts = report_parts(run, plots=False)
     m, summary = run.manifest, run.summary
     study = m.get("study", {})
     lines = [f"# evalkit report: {study.get('name', 'run')}", ""]
     lines.append(f"Run folder `{run.folder}`, started {m.get('created')}, finished {m.get('finished', 'not yet')}.")
     tasks = ", ".join(f"{t['name']} ({t['questions']} questions, {t['exemplars']} exemplars)" for t in m.get("tasks", []))
-    lines += [f"Tasks: {tasks}.", ""]
-    lines.append("## Models")
-    lines.append("")
+    lines += [f"Tasks: {tasks}.", "", "## Models", ""]
     for name, info in m.get("models", {}).items():
         sha = (info.get("sha256") or "")[:16]
-        lines.append(
-            f"- **{name}**: {info.get('parameters', '?'):,} parameters, dtype {info.get('dtype')}, "
-            f"{'chat template' if info.get('chat_template') else 'plain text'}, file sha256 {sha}…"
-            if isinstance(info.get("parameters"), int) else
-            f"- **{name}**: backend {info.get('backend')}, dtype {info.get('dtype')}, sha256 {sha}"
-        )
+        params = info.get("parameters")
+        desc = f"{params:,} parameters, " if isinstance(params, int) else ""
+        lines.append(f"- **{name}**: {desc}backend {info.get('backend')}, dtype {info.get('dtype')}, "
+                     f"{'chat template' if info.get('chat_template') else 'plain text'}, sha256 {sha}…, "
+                     f"{info.get('threads')} threads")
         if info.get("dtype") == "bfloat16":
             lines.append("  - **Reduced precision (bfloat16) was used**: greedy answers can differ from float32.")
     d = m.get("decoding", {})
     lines += ["", f"Greedy decoding; new-token limits {d.get('max_new_tokens')}; stop strings "
-              f"{[s for s in d.get('stop', [])]}; seed {m.get('seed')}.", ""]
+              f"{list(d.get('stop', []))}; exemplar seed {m.get('seed')}.", ""]
     lines += ["## Accuracy per condition", "",
-              "Accuracy with its 95% Wilson score interval (statsmodels). Intervals that overlap do not by "
-              "themselves show a difference or its absence; see the paired comparisons.", "",
-              accuracy_table(summary), ""]
-    if not run.records.empty:
-        lines += _comparisons(run.records)
+              "Accuracy with its 95% Wilson score interval (statsmodels). Overlapping intervals neither show nor "
+              "rule out a difference; the paired comparisons below do.", "", accuracy_table(summary), ""]
+    lines += _comparison_section(parts.comparisons)
+    lines += _spread_section(parts.spread, parts.components)
+    lines += _cost_section(parts.costs, parts.cheapest)
+    lines += _audit_section(run, parts.verdicts)
     ties = int(summary["ties"].sum()) if "ties" in summary else 0
     if ties:
         lines += [f"{ties} records met a near-tie between the two best next tokens (top-2 logit gap < 1e-3): "
@@ -80,7 +159,7 @@ def render_report(run) -> str:
     return "\n".join(lines)
 
 
-def write_report(run) -> Path:
-    path = Path(run.folder) / "report.md"
-    path.write_text(render_report(run), encoding="utf-8")
+def write_report(run, parts=None) -> Path:
+    path = Path(run.folder) / REPORT_NAME
+    path.write_text(render_report(run, parts), encoding="utf-8")
     return path

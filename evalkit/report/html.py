@@ -1,0 +1,102 @@
+"""The static HTML report: one self-contained file (inline CSS, SVG plots, a small inline filter).
+
+Everything that came from a model or a dataset is escaped by jinja2's autoescaping; only our
+own matplotlib SVGs are inserted as markup.
+"""
+
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import jinja2
+import pandas as pd
+from markupsafe import Markup, escape
+
+__all__ = ["render_html", "write_html", "marked_completion", "HTML_NAME"]
+
+HTML_NAME = "report.html"
+_TEMPLATES = Path(__file__).resolve().parent / "templates"
+
+
+def marked_completion(text: str, steps: list[dict]) -> Markup:
+    """The completion, escaped, with each audited step wrapped: wrong steps marked ``bad``."""
+    out, pos = [], 0
+    for s in sorted(steps, key=lambda s: s["start"]):
+        start, end = int(s["start"]), int(s["end"])
+        if start < pos or end > len(text):
+            continue
+        out.append(escape(text[pos:start]))
+        cls = "good" if s.get("holds") else "bad"
+        title = f"{s.get('expression')} = {s.get('value')}" if not s.get("holds") else ""
+        out.append(Markup('<mark class="{}" title="{}">{}</mark>').format(cls, title, text[start:end]))
+        pos = end
+    out.append(escape(text[pos:]))
+    return Markup("").join(out)
+
+
+def _svg(path: Path | None) -> Markup | None:
+    if path is None or not Path(path).is_file():
+        return None
+    text = Path(path).read_text(encoding="utf-8")
+    start = text.find("<svg")  # drop the XML prolog and doctype: inline SVG needs neither
+    return Markup(text[start:]) if start >= 0 else None
+
+
+def _flops_text(x: float) -> str:
+    if x is None or (isinstance(x, float) and math.isnan(x)):
+        return "—"
+    return f"{x:.2e}"
+
+
+def render_html(run, plots: dict[str, Path | None], comparisons: pd.DataFrame | None = None,
+                verdicts: pd.DataFrame | None = None, costs: pd.DataFrame | None = None,
+                cheapest: str | None = None) -> str:
+    """The report as one HTML string."""
+    from ..compute import FLOPS_FORMULA
+
+    env = jinja2.Environment(loader=jinja2.FileSystemLoader(_TEMPLATES), autoescape=True,
+                             undefined=jinja2.StrictUndefined)
+    summary = (costs if costs is not None else run.summary).copy()
+    if "flops" not in summary:
+        summary["flops"] = float("nan")
+    summary["flops_text"] = summary["flops"].map(_flops_text)
+    by_record: dict[tuple[str, str], tuple[str, list]] = {}
+    if verdicts is not None and not verdicts.empty:
+        for v in verdicts.itertuples():
+            by_record[(v.condition_id, v.question_id)] = (v.verdict, v.detail.get("steps", []))
+    records = []
+    for r in run.records.to_dict("records"):
+        verdict, steps = by_record.get((r["condition_id"], r["question_id"]), ("", []))
+        margin = r.get("min_margin")
+        records.append({
+            **r, "verdict": verdict, "completion_html": marked_completion(r["completion"], steps),
+            "interventions": (r.get("extra") or {}).get("calculator", []),
+            "min_margin": None if margin is None or (isinstance(margin, float) and math.isnan(margin)) else margin,
+        })
+    audit = None
+    if verdicts is not None and not verdicts.empty:
+        labels = run.records.drop_duplicates("condition_id").set_index("condition_id")["condition"]
+        names = sorted(verdicts["verdict"].unique())
+        rows = [{"condition": labels.get(cid, cid), "counts": g["verdict"].value_counts().to_dict()}
+                for cid, g in verdicts.groupby("condition_id", sort=False)]
+        audit = {"verdicts": names, "rows": rows}
+    bf16 = [m for m, info in run.manifest.get("models", {}).items() if info.get("dtype") == "bfloat16"]
+    return env.get_template("report.html.j2").render(
+        title=run.manifest.get("study", {}).get("name", "run"),
+        folder=str(run.folder), manifest=run.manifest, n_records=len(records), bf16=bf16,
+        summary=summary.to_dict("records"),
+        comparisons=[] if comparisons is None else comparisons.to_dict("records"),
+        forest_svg=_svg(plots.get("forest")), size_svg=_svg(plots.get("size")),
+        compute_svg=_svg(plots.get("compute")), flops_formula=FLOPS_FORMULA, cheapest=cheapest,
+        audit=audit, records=records,
+        conditions=list(dict.fromkeys(run.records["condition"])) if len(run.records) else [],
+        outcomes=sorted(set(run.records["outcome"])) if len(run.records) else [],
+        verdict_names=sorted({r["verdict"] for r in records if r["verdict"]}),
+    )
+
+
+def write_html(run, **kwargs) -> Path:
+    path = Path(run.folder) / HTML_NAME
+    path.write_text(render_html(run, **kwargs), encoding="utf-8")
+    return path
