@@ -239,3 +239,27 @@ def test_compare_rejects_records_without_the_needed_columns():
     records = _records({"direct/4": 1, "worked/4": 1}, {"direct": 0.4, "worked": 0.5}).drop(columns="draw")
     with pytest.raises(DataError, match="draw"):
         compare(records)
+
+
+def test_forest_plot_writes_readable_svg_and_png(tmp_path):
+    import xml.etree.ElementTree as ET
+
+    from evalkit.report.forest import forest_plot
+
+    records = _records(
+        {"direct/4": 3, "worked/4": 3, "worked-zero/0": 1, "direct/0": 1},
+        {"direct": 0.4, "worked": 0.55, "worked-zero": 0.45},
+    )
+    table = compare(records)
+    svg, png = forest_plot(table, tmp_path / "plots" / "forest")
+    assert (svg.name, png.name) == ("forest.svg", "forest.png")
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and png.stat().st_size > 1000
+    text = svg.read_text()
+    ET.fromstring(text)  # well-formed XML
+    assert "tiny-lm, 4-shot: worked minus direct" in text and "percentage points" in text
+    assert f"{100 * table.difference[0]:+.1f}" in text
+    # Same table, same bytes: reports can be diffed between runs.
+    again, _ = forest_plot(table, tmp_path / "again")
+    assert again.read_bytes() == svg.read_bytes()
+    with pytest.raises(DataError, match="no rows"):
+        forest_plot(table.iloc[:0], tmp_path / "empty")
