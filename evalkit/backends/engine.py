@@ -1,0 +1,264 @@
+"""Fast greedy decoding on the CPU: shared-prefix reuse and continuous batching.
+
+How a call runs:
+
+1. Every prompt is tokenised (no special tokens added). The longest common *token* prefix of
+   all prompts is run through the model once (``logits_to_keep=1``: no vocabulary projection
+   for positions whose logits nobody reads).
+2. Questions are decoded in a batch of rows that continue from copies of that prefix cache
+   (see :mod:`evalkit.backends.kvslab` for the layout). Each step feeds one token per row and
+   projects only the last position to the vocabulary.
+3. A row ends at its own stop string, end-of-sequence token or length limit. When a quarter
+   of the rows have ended, waiting questions are prefilled against the prefix and merged into
+   the running batch in the freed rows; once nobody waits, ended rows are dropped likewise.
+   (Ended rows run along until then; their tokens are ignored.)
+
+Results equal plain one-at-a-time ``generate`` (:func:`evalkit.backends.reference.reference_generate`)
+except at ties: float32 sums taken in another order differ by ~1e-6, which can swap two
+candidate tokens whose logits are that close. ``TIE_MARGIN`` is the gap below which we call
+a step a tie; ``Generation.min_margin`` tells callers how close each completion came.
+"""
+
+from __future__ import annotations
+
+import time
+from collections import deque
+from dataclasses import dataclass
+from typing import Callable, Sequence
+
+import torch
+
+from ..errors import BackendError
+from .kvslab import AttentionPlan, Slab, combine
+from .stops import StopWatcher, settle
+
+__all__ = ["Generation", "greedy_generate", "common_prefix_length", "eos_ids", "auto_batch_size",
+           "kv_bytes_per_token", "TIE_MARGIN"]
+
+TIE_MARGIN = 1e-4
+"""Top-1 minus top-2 logit gap (absolute) under which a greedy step counts as a tie.
+
+Batched and one-at-a-time float32 runs of the same model differ by about 1e-6 in a logit;
+1e-4 leaves two orders of magnitude of room (common practice, not a published constant).
+"""
+
+MAX_AUTO_BATCH = 32      # beyond this a 2-core CPU is compute-bound; bigger batches only add padding
+MEMORY_FRACTION = 0.25   # share of available memory the key/value cache may take
+PREFILL_TOKENS = 2048    # tokens per prefill forward call (bounds activation memory)
+
+
+@dataclass
+class Generation:
+    """One greedy completion."""
+
+    text: str            # decoded completion, cut before the first stop string (stop string excluded)
+    prompt_tokens: int
+    new_tokens: int      # tokens generated up to and including the one that completed the stop string / eos
+    min_margin: float    # smallest top-1 minus top-2 logit gap over the counted steps (inf if none)
+    finish: str          # "stop" | "eos" | "length"
+    seconds: float       # this item's share of wall time: each forward call's time split over its live rows
+
+
+def common_prefix_length(seqs: Sequence[Sequence[int]]) -> int:
+    """Length of the longest common prefix of token sequences."""
+    if not seqs:
+        return 0
+    first, n = seqs[0], min(len(s) for s in seqs)
+    for s in seqs[1:]:
+        i = 0
+        while i < n and s[i] == first[i]:
+            i += 1
+        n = i
+    return n
+
+
+def eos_ids(model, tokenizer) -> set[int]:
+    """End-of-sequence token ids: the model's generation config, else the tokenizer's."""
+    e = getattr(getattr(model, "generation_config", None), "eos_token_id", None)
+    if e is None:
+        e = tokenizer.eos_token_id
+    if e is None:
+        return set()
+    return {int(x) for x in (e if isinstance(e, (list, tuple)) else [e])}
+
+
+def kv_bytes_per_token(model) -> int:
+    """Key/value bytes one token costs: layers x 2 x kv_heads x head_dim x dtype bytes."""
+    cfg = model.config.get_text_config(decoder=True)
+    heads = getattr(cfg, "num_key_value_heads", None) or cfg.num_attention_heads
+    head_dim = getattr(cfg, "head_dim", None) or cfg.hidden_size // cfg.num_attention_heads
+    itemsize = next(model.parameters()).element_size()
+    return cfg.num_hidden_layers * 2 * heads * head_dim * itemsize
+
+
+def _mem_available() -> int:
+    try:
+        with open("/proc/meminfo") as f:
+            for line in f:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 4 * 1024 ** 3  # unknown platform: assume a modest laptop
+
+
+def auto_batch_size(model, row_tokens: int, n_prompts: int) -> int:
+    """Rows per batch from the key/value memory one row needs and the memory available."""
+    vocab = model.config.get_text_config(decoder=True).vocab_size
+    # Two slabs coexist while rows are merged; logits come out in float32 plus a copy.
+    per_row = 2 * row_tokens * kv_bytes_per_token(model) + 8 * vocab
+    fit = int(MEMORY_FRACTION * _mem_available()) // max(1, per_row)
+    return max(1, min(MAX_AUTO_BATCH, fit, n_prompts))
+
+
+class _Row:
+    __slots__ = ("item", "prompt_len", "ids", "margins", "done", "seconds")
+
+    def __init__(self, item: int, prompt_len: int):
+        self.item, self.prompt_len = item, prompt_len
+        self.ids: list[int] = []
+        self.margins: list[float] = []
+        self.done = False
+        self.seconds = 0.0
+
+
+class _Run:
+    """State of one greedy_generate call."""
+
+    def __init__(self, model, tokenizer, enc, P, max_new_tokens, stop, eos, on_done):
+        self.model, self.tokenizer, self.enc, self.P = model, tokenizer, enc, P
+        self.max_new, self.stop, self.eos, self.on_done = max_new_tokens, list(stop), eos, on_done
+        self.watcher = StopWatcher(tokenizer, stop)
+        self.device = model.device
+        self.pad = tokenizer.pad_token_id if tokenizer.pad_token_id is not None else 0
+        self.shared_seconds = 0.0  # each item's share of the prefix computation
+
+    def advance(self, rows: list[_Row], logits: torch.Tensor, seconds: float) -> None:
+        """Take one greedy token per live row from ``logits`` [B, V]; finish rows that end."""
+        live = [r for r in rows if not r.done]
+        for r in live:
+            r.seconds += seconds / max(1, len(live))
+        logits = logits.float()
+        top = torch.topk(logits, 2, dim=-1).values
+        toks = logits.argmax(dim=-1).tolist()
+        gaps = (top[:, 0] - top[:, 1]).tolist()
+        for r, t, g in zip(rows, toks, gaps):
+            if r.done:
+                continue
+            r.ids.append(t)
+            r.margins.append(g)
+            if t in self.eos or self.watcher.hit(r.ids) or len(r.ids) >= self.max_new:
+                self.finish(r)
+
+    def finish(self, r: _Row) -> None:
+        r.done = True
+        text, k, how = settle(self.tokenizer, r.ids, self.stop, self.eos)
+        margin = min(r.margins[:k], default=float("inf"))
+        self.on_done(r.item, Generation(text=text, prompt_tokens=r.prompt_len, new_tokens=k,
+                                        min_margin=margin, finish=how,
+                                        seconds=r.seconds + self.shared_seconds))
+
+    def prefill(self, prefix: Slab, items: list[int]) -> tuple[Slab, list[_Row]]:
+        """New rows for ``items``: their suffixes right-aligned after a copy of the prefix."""
+        t0 = time.perf_counter()
+        sufs = [self.enc[i][self.P:] for i in items]
+        k, S = len(sufs), max(len(s) for s in sufs)
+        slab = prefix.replicate(k, S + self.max_new)
+        ids = torch.full((k, S), self.pad, dtype=torch.long)
+        pos = torch.zeros((k, S), dtype=torch.long)
+        real = torch.zeros((k, S), dtype=torch.bool)
+        for j, s in enumerate(sufs):
+            ids[j, S - len(s):] = torch.tensor(s, dtype=torch.long)
+            pos[j, S - len(s):] = torch.arange(self.P, self.P + len(s))
+            real[j, S - len(s):] = True
+        ids, pos, real = ids.to(self.device), pos.to(self.device), real.to(self.device)
+        step = max(1, PREFILL_TOKENS // k)
+        for a in range(0, S, step):
+            logits = slab.extend(self.model, ids[:, a:a + step], pos[:, a:a + step], real[:, a:a + step])
+        slab.tail = [len(s) for s in sufs]
+        rows = [_Row(i, len(self.enc[i])) for i in items]
+        self.advance(rows, logits, time.perf_counter() - t0)
+        return slab, rows
+
+    def step(self, slab: Slab, rows: list[_Row]) -> None:
+        """One decode step for every row of the batch."""
+        t0 = time.perf_counter()
+        ids = torch.tensor([[r.ids[-1]] for r in rows], dtype=torch.long, device=self.device)
+        pos = torch.tensor([[r.prompt_len + len(r.ids) - 1] for r in rows], dtype=torch.long,
+                           device=self.device)
+        logits = slab.extend(self.model, ids, pos)
+        slab.tail = [t + 1 for t in slab.tail]
+        self.advance(rows, logits, time.perf_counter() - t0)
+
+
+def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens: int,
+                    stop: Sequence[str] = (), batch_size: int | None = None,
+                    reuse_prefix: bool = True, progress: Callable[[int], None] | None = None,
+                    on_result: Callable[[int, Generation], None] | None = None) -> list[Generation]:
+    """Greedy completions of complete prompt strings, in prompt order.
+
+    ``batch_size`` overrides the rows decoded together (default: from memory, at most 32);
+    ``progress`` is called with the number of items just finished (an increment);
+    ``on_result(index, generation)`` fires as each item finishes.
+    """
+    if max_new_tokens < 1:
+        raise BackendError(f"max_new_tokens must be at least 1, got {max_new_tokens}")
+    if batch_size is not None and batch_size < 1:
+        raise BackendError(f"batch_size must be at least 1, got {batch_size}")
+    prompts = list(prompts)
+    if not prompts:
+        return []
+    start = time.perf_counter()
+    enc = tokenizer(prompts, add_special_tokens=False)["input_ids"]
+    for i, e in enumerate(enc):
+        if not e:
+            raise BackendError(f"prompt {i} is empty after tokenisation; every prompt needs text")
+    # At least one token of every prompt stays outside the prefix: its logits start decoding.
+    P = min(common_prefix_length(enc), min(len(e) for e in enc) - 1) \
+        if reuse_prefix and len(prompts) > 1 else 0
+    eos = eos_ids(model, tokenizer)
+    results: list[Generation | None] = [None] * len(prompts)
+
+    def on_done(i: int, g: Generation) -> None:
+        results[i] = g
+        if on_result:
+            on_result(i, g)
+        if progress:
+            progress(1)
+
+    run = _Run(model, tokenizer, enc, P, max_new_tokens, stop, eos, on_done)
+    plan = AttentionPlan(model)
+    max_suffix = max(len(e) for e in enc) - P
+    cap = batch_size or auto_batch_size(model, P + max_suffix + max_new_tokens, len(prompts))
+    refill_at = max(1, cap // 4)
+    # Longest suffixes first: neighbours in a prefill then need little padding.
+    waiting = deque(sorted(range(len(prompts)), key=lambda i: (-len(enc[i]), i)))
+
+    was_training = model.training
+    model.eval()
+    try:
+        with torch.inference_mode():
+            t0 = time.perf_counter()
+            prefix = Slab.for_prefix(model, plan, enc[0][:P], PREFILL_TOKENS)
+            run.shared_seconds = (time.perf_counter() - t0) / len(prompts)
+            slab, rows = None, []
+            while waiting or any(not r.done for r in rows):
+                live = [j for j, r in enumerate(rows) if not r.done]
+                ended = len(rows) - len(live)
+                if waiting and (not live or cap - len(live) >= refill_at):
+                    take = [waiting.popleft() for _ in range(min(cap - len(live), len(waiting)))]
+                    new, new_rows = run.prefill(prefix, take)
+                    keep_new = [j for j, r in enumerate(new_rows) if not r.done]
+                    parts = ([(slab, live)] if live else []) + [(new, keep_new)]
+                    rows = [rows[j] for j in live] + [new_rows[j] for j in keep_new]
+                    slab = combine(parts, max_new_tokens) if rows else None
+                elif ended and not waiting and (ended >= refill_at or not live):
+                    rows = [rows[j] for j in live]
+                    slab = combine([(slab, live)], max_new_tokens) if rows else None
+                if rows:
+                    run.step(slab, rows)
+    except RuntimeError as e:  # torch errors (shapes, memory) become one backend error
+        raise BackendError(f"greedy decoding failed: {str(e).splitlines()[0]}") from None
+    finally:
+        model.train(was_training)
+    return results
