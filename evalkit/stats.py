@@ -203,25 +203,12 @@ def paired_comparison(
         cluster = dict(n_clusters=k, cluster_se=float(fit.bse[0]), cluster_ci_low=float(c_low), cluster_ci_high=float(c_high))
     discordance = float(np.mean(d**2))
     return PairedComparison(
-        label_a=label_a,
-        label_b=label_b,
-        n=n,
-        accuracy_a=float(a.mean()),
-        accuracy_b=float(b.mean()),
-        difference=float(d.mean()),
-        ci_low=float(low),
-        ci_high=float(high),
-        se=float(d.std(ddof=1) / math.sqrt(n)),
-        p_value=p,
-        test=test,
-        binary=binary,
-        discordance=discordance,
-        boot_low=boot_low,
-        boot_high=boot_high,
+        label_a=label_a, label_b=label_b, n=n, accuracy_a=float(a.mean()), accuracy_b=float(b.mean()),
+        difference=float(d.mean()), ci_low=float(low), ci_high=float(high),
+        se=float(d.std(ddof=1) / math.sqrt(n)), p_value=p, test=test, binary=binary,
+        discordance=discordance, boot_low=boot_low, boot_high=boot_high,
         mdd_80=minimum_detectable_difference(n, discordance, alpha, 0.8, binary=binary),
-        alpha=alpha,
-        **counts,
-        **cluster,
+        alpha=alpha, **counts, **cluster,
     )
 
 
