@@ -103,3 +103,51 @@ def preview(path: str | Path, style: str = "worked", shots: int = 4, draw: int =
     chat = bool(getattr(backend, "chat", False))
     text = render(task, style, exemplars, q.question, chat=chat)
     return backend.format_prompt(text) if backend is not None else text
+
+
+def audit(run_dir: str | Path):
+    """Add chain verdicts to a run's store, rebuild its reports; returns verdict counts per condition."""
+    from .report.build import write_reports
+    from .run import load_run
+    from .run_audit import audit_run, verdict_counts
+
+    verdicts = audit_run(run_dir)
+    write_reports(load_run(run_dir))
+    return verdict_counts(verdicts)
+
+
+def parse_pairs(pairs: Sequence[str]) -> list[tuple[str, str]] | None:
+    """'a:b' strings (settings by label or by style) as (a, b) pairs; None for the default pairs."""
+    from .errors import EvalkitError
+
+    out = []
+    for p in pairs:
+        a, sep, b = p.partition(":")
+        if not sep or not a.strip() or not b.strip():
+            raise EvalkitError(f"--pair '{p}': write it as A:B, e.g. direct:worked")
+        out.append((a.strip(), b.strip()))
+    return out or None
+
+
+def compare(run_dir: str | Path, pairs: Sequence[tuple[str, str]] | None = None, alpha: float = 0.05,
+            target_difference: float = 0.05):
+    """Paired comparisons of a run's settings; writes comparisons.csv and the forest plot; returns the table."""
+    from .report.forest import forest_plot
+    from .run import load_run
+    from .stats import compare as compare_records
+
+    run = load_run(run_dir)
+    table = compare_records(run.records, pairs=list(pairs) if pairs else None, alpha=alpha,
+                            target_difference=target_difference)
+    table.to_csv(Path(run_dir) / "comparisons.csv", index=False)
+    if len(table):
+        forest_plot(table, Path(run_dir) / "plots" / "comparisons")
+    return table
+
+
+def plan(accuracy: float, difference: float, discordance: float | None = None, alpha: float = 0.05,
+         power: float = 0.8):
+    """Questions needed to detect a difference, before any model runs (see evalkit.power.plan)."""
+    from .power import plan as plan_questions
+
+    return plan_questions(accuracy, difference, discordance, alpha, power)

@@ -158,6 +158,62 @@ def report(run_dir: Path = typer.Argument(..., help="A run folder.")) -> None:
 
 
 @command
+def audit(run_dir: Path = typer.Argument(..., help="A run folder.")) -> None:
+    """Verify every arithmetic step of the run's chains and add a verdict per record."""
+    from . import api
+
+    table = api.audit(run_dir)
+    if table.empty:
+        out.print("no reasoning records to audit (direct-style records carry no chain)")
+        return
+    t = Table(title="chain verdicts per condition")
+    for col in table.columns:
+        t.add_column(str(col), justify="left" if col == "condition" else "right")
+    for row in table.itertuples(index=False):
+        t.add_row(*[str(v) for v in row])
+    out.print(t)
+    out.print(f"verdicts stored in {Path(run_dir) / 'store.sqlite'}; reports rebuilt", highlight=False)
+
+
+@command
+def compare(
+    run_dir: Path = typer.Argument(..., help="A run folder."),
+    pair: Optional[List[str]] = typer.Option(None, "--pair", "-p", help="A:B to compare (styles or setting labels); repeatable. Default: worked vs direct per model and shots."),
+    target: float = typer.Option(0.05, help="Difference (share) the power figure speaks of, e.g. 0.05 for 5 points."),
+) -> None:
+    """Paired comparisons with intervals, McNemar's test, Holm correction and power, in plain words."""
+    from . import api
+
+    table = api.compare(run_dir, api.parse_pairs(pair or []), target_difference=target)
+    t = Table(title="paired comparisons (b − a)")
+    for col in ("a", "b", "n", "difference", "95% interval", "p (Holm)", "detectable at 80%"):
+        t.add_column(col, justify="left" if col in ("a", "b") else "right")
+    for r in table.itertuples():
+        t.add_row(r.label_a, r.label_b, str(r.n), f"{100 * r.difference:+.1f}",
+                  f"[{100 * r.ci_low:.1f}, {100 * r.ci_high:.1f}]", f"{r.p_holm:.3g}", f"{100 * r.mdd_80:.1f}")
+    out.print(t)
+    for v in table["verdict"]:
+        out.print(f"• {v}", highlight=False)
+    out.print(f"table: {Path(run_dir) / 'comparisons.csv'}; forest plot: {Path(run_dir) / 'plots' / 'comparisons.svg'}",
+              highlight=False)
+
+
+@command
+def plan(
+    accuracy: float = typer.Option(..., help="Guessed baseline accuracy, as a share (0.3 for 30%)."),
+    difference: float = typer.Option(0.05, help="Smallest difference worth detecting, as a share."),
+    discordance: Optional[float] = typer.Option(None, help="Guessed share of questions the two settings disagree on (default: assume independent errors)."),
+    power: float = typer.Option(0.8, help="Wanted power."),
+    alpha: float = typer.Option(0.05, help="Significance level."),
+) -> None:
+    """How many questions a comparison needs, before any model runs."""
+    from . import api
+
+    p = api.plan(accuracy, difference, discordance, alpha, power)
+    out.print(p.summary(), highlight=False)
+
+
+@command
 def models() -> None:
     """List the models evalkit knows and whether they are present in the cache."""
     from .models import list_models
