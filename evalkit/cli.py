@@ -214,6 +214,45 @@ def plan(
 
 
 @command
+def diff(
+    run_a: Path = typer.Argument(..., help="The earlier run folder."),
+    run_b: Path = typer.Argument(..., help="The later run folder."),
+) -> None:
+    """Which records changed outcome between two runs of one study, with paired statistics."""
+    from .rundiff import diff_runs
+
+    d = diff_runs(run_a, run_b)
+    out.print(d.summary(), highlight=False)
+    if len(d.comparisons):
+        t = Table(title="accuracy change per setting (B − A)")
+        for col in ("setting", "n", "A", "B", "difference", "95% interval", "p (Holm)"):
+            t.add_column(col, justify="left" if col == "setting" else "right")
+        for r in d.comparisons.itertuples():
+            t.add_row(r.setting, str(r.n), f"{100 * r.accuracy_a:.1f}%", f"{100 * r.accuracy_b:.1f}%",
+                      f"{100 * r.difference:+.1f}", f"[{100 * r.ci_low:.1f}, {100 * r.ci_high:.1f}]", f"{r.p_holm:.3g}")
+        out.print(t)
+    for r in d.changed.head(20).itertuples():
+        out.print(f"  {r.question_id_a}  {r.condition_a}: {r.outcome_a} → {r.outcome_b} "
+                  f"(extracted {r.extracted_a} → {r.extracted_b})", highlight=False)
+    if len(d.changed) > 20:
+        out.print(f"  … and {len(d.changed) - 20} more")
+
+
+@command
+def rerun(
+    run_dir: Path = typer.Argument(..., help="A run folder to reproduce."),
+    out_dir: Optional[Path] = typer.Option(None, "--out", help="Where the new run goes (default: RUN-rerun)."),
+) -> None:
+    """Re-run a study from its manifest, without the cache, and say whether any record differs."""
+    from .rundiff import rerun as rerun_study
+
+    r = rerun_study(run_dir, out=out_dir)
+    out.print(r.summary(), highlight=False)
+    if not r.identical:
+        raise typer.Exit(1)
+
+
+@command
 def models() -> None:
     """List the models evalkit knows and whether they are present in the cache."""
     from .models import list_models

@@ -120,3 +120,34 @@ def test_zero_shot_styles_have_one_draw(nursery):
     s = api.study_for(nursery, models=["m"], styles=["direct", "worked-zero"], shots=[0, 2], draws=3)
     conds = [(p.condition.style, p.condition.shots, p.condition.draw) for p in expand(s)]
     assert conds == [("direct", 0, 0), ("direct", 2, 0), ("direct", 2, 1), ("direct", 2, 2), ("worked-zero", 0, 0)]
+
+
+def test_diff_and_rerun(study, tmp_path):
+    from evalkit.rundiff import diff_runs, rerun
+
+    a = api.run(study, out=tmp_path / "a", backend_factory=factory, progress=False)
+
+    def changed(model, s):  # a "new model version": n3 now right in direct style
+        b = factory(model, s)
+        inner = b.script
+
+        def script(prompt):
+            if prompt.rstrip().endswith(NURSERY_QUESTIONS[2]["question"] + "\nAnswer:"):
+                return " 25"
+            return inner(prompt)
+        b.script = script
+        return b
+
+    api.run(study, out=tmp_path / "b", backend_factory=changed, use_cache=False, progress=False)
+    d = diff_runs(tmp_path / "a", tmp_path / "b")
+    assert len(d.matched) == 12 and d.only_a == d.only_b == 0
+    assert d.changed["question_id_a"].tolist() == ["n3"]
+    assert (d.changed["outcome_a"].iloc[0], d.changed["outcome_b"].iloc[0]) == ("wrong", "correct")
+    assert d.text_changed == 1 and "1 changed outcome (wrong → correct: 1)" in d.summary()
+    direct = d.comparisons.set_index("setting").loc["nursery | direct | 2-shot | draw 0"]
+    assert direct["difference"] == pytest.approx(1 / 6)
+
+    same = rerun(tmp_path / "a", out=tmp_path / "again", backend_factory=factory, progress=False)
+    assert same.identical and same.compared == len(a.records) and "byte for byte" in same.summary()
+    other = rerun(tmp_path / "a", out=tmp_path / "other", backend_factory=changed, progress=False)
+    assert not other.identical and len(other.differing) == 1
