@@ -219,7 +219,12 @@ def _expr_start(toks, hi: int) -> int | None:
 
 
 class _Parser:
-    """Recursive descent over toks[lo:hi]: expr := term (+|- term)*, term := factor (*|/|of factor)*."""
+    """Recursive descent over toks[lo:hi].
+
+    expr := term (+|- term)* ; term := factor (*|/ factor)* ;
+    factor := - factor | primary [of factor] (of only after a percentage) ;
+    primary := [currency] number [%] [units] | ( expr ) [units]
+    """
 
     def __init__(self, toks, lo: int, hi: int):
         self.toks, self.i, self.hi, self.depth = toks, lo, hi, 0
@@ -243,11 +248,9 @@ class _Parser:
 
     def term(self):
         node = self.factor()
-        while (t := self.peek()) is not None and t[0] == OP and t[3] in ("*", "/", "of"):
-            if t[3] == "of" and not (node[0] == "num" and node[3]):
-                raise _Fail  # "of" multiplies only after a percentage: "20% of 50"
+        while (t := self.peek()) is not None and t[0] == OP and t[3] in ("*", "/"):
             self.i += 1
-            node = ("bin", "/" if t[3] == "/" else "*", node, self.factor())
+            node = ("bin", t[3], node, self.factor())
         return node
 
     def factor(self):
@@ -255,7 +258,13 @@ class _Parser:
         if t is not None and t[0] == OP and t[3] == "-":
             self.i += 1
             return ("neg", self.factor())
-        return self.primary()
+        node = self.primary()
+        if node[0] == "num" and node[3] and (t := self.peek()) is not None and t[3] == "of":
+            # "of" multiplies only after a percentage and binds tighter than * and /:
+            # "100 / 20% of 50" is 100 / (20% of 50)
+            self.i += 1
+            return ("bin", "of", node, self.factor())
+        return node
 
     def units(self):
         n = 0
@@ -316,7 +325,7 @@ def _value(node) -> int | Fraction:
     op = node[1]
     if op == "/":
         return Fraction(a, b) if type(a) is int and type(b) is int else a / b
-    return a + b if op == "+" else a - b if op == "-" else a * b
+    return a + b if op == "+" else a - b if op == "-" else a * b  # "*" and "of"
 
 
 def _render(node) -> str:
