@@ -324,7 +324,12 @@ def list_models(cache_dir: str | Path | None = None):
     return pd.DataFrame(rows, columns=columns)
 
 
-_LOAD_ERRORS = (OSError, ValueError, RuntimeError, KeyError, TypeError, ImportError, AttributeError)
+def _load_errors() -> tuple[type[BaseException], ...]:
+    """What a bad model file or folder makes transformers, torch or safetensors raise."""
+    from safetensors import SafetensorError
+
+    return (OSError, ValueError, RuntimeError, KeyError, TypeError, ImportError, AttributeError,
+            SafetensorError)
 
 
 def _from_pretrained(what: str, target: str, torch_dtype, *, tokenizer_from=None,
@@ -341,8 +346,9 @@ def _from_pretrained(what: str, target: str, torch_dtype, *, tokenizer_from=None
         model = AutoModelForCausalLM.from_pretrained(
             target, dtype=torch_dtype, **kwargs, **(model_kwargs or {})
         )
-    except _LOAD_ERRORS as exc:
-        raise ModelError(f"cannot load model {what}: {one_line(exc)}") from None
+    except _load_errors() as exc:
+        # Chained (not "from None"): with --debug the library's traceback shows where it broke.
+        raise ModelError(f"cannot load model {what}: {one_line(exc)}") from exc
     return model, tokenizer
 
 
@@ -394,6 +400,8 @@ def load(
     import torch
     # Imported before the clock starts: transformers loads these lazily, a once-per-process
     # cost of seconds that load_seconds should not charge to the model.
+    import transformers.generation  # noqa: F401
+    import transformers.modeling_utils  # noqa: F401
     from transformers import AutoModelForCausalLM, AutoTokenizer, PreTrainedTokenizerFast  # noqa: F401
 
     if isinstance(source, str):
