@@ -541,6 +541,9 @@ def recompute(expression: str, replace: dict[Fraction, Fraction]) -> tuple[Fract
                 swapped = True
                 return ("num", replace[node[1]], node[2], False)
             return node
+        if tag == "neg" and node[1][0] == "num" and -node[1][1] in replace:
+            swapped = True  # "-6" written for a result of -6 is one operand, not minus 6
+            return ("num", replace[-node[1][1]], node[1][2], False)
         if tag in ("neg", "paren"):
             return (tag, swap(node[1]))
         return ("bin", node[1], swap(node[2]), swap(node[3]))
