@@ -1,0 +1,274 @@
+"""The fast greedy engine against plain one-at-a-time ``generate`` (transformers), on tiny models.
+
+The outside reference is transformers' own ``generate`` (greedy, no stop strings), run one
+prompt at a time by ``reference_generate``; the engine must give byte-identical completions
+in float32 except where the reference itself met a near-tie (margin under TIE_MARGIN).
+"""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+import torch
+from transformers import AutoModelForCausalLM, AutoTokenizer
+
+from evalkit.backends import engine as engine_mod
+from evalkit.backends.engine import (TIE_MARGIN, Generation, auto_batch_size, common_prefix_length,
+                                     greedy_generate, kv_bytes_per_token)
+from evalkit.backends.kvslab import Slab
+from evalkit.backends.reference import reference_generate, reference_trace
+from evalkit.errors import BackendError
+from tests.tiny import build_tiny_model
+
+HEAD = ("You are a careful assistant.\n\n"
+        "Question: A spoke costs 3 coins; a new chain costs 27 coins. How many coins for 4 spokes?\n"
+        "Answer: 12\n\n"
+        "Question: The ferry leaves at 09:15 and the crossing takes 45 minutes. When does it arrive?\n"
+        "Answer: 10:00\n\n")
+QUESTIONS = [
+    "How many?",
+    "The mechanic trued 5 wheels before lunch and 7 after lunch. How many wheels?",
+    "What is the total?",
+    "The seed nursery sowed 120 trays with 24 seedlings each. How many seedlings?",
+    "If each tray holds 6 pots and there are 8 trays, how many pots are there?",
+    "x",
+    "The timetable lists 6 sailings a day, 7 days a week. How many sailings?",
+    "First, 3 + 4 = 7. Then 7 * 2?",
+    "The bike-repair workshop fixed 14 punctures on Monday and 9 on Tuesday. How many in all?",
+    "45 - 18 = ?",
+    "A new chain costs 27 coins.",
+    "How many pots for 100 trays of 25?",
+    "Is it 1000 or 50?",
+    "The answer is",
+]
+PROMPTS = [HEAD + "Question: " + q + "\nAnswer:" for q in QUESTIONS]
+MAX_NEW = 24
+
+
+@pytest.fixture(scope="module", autouse=True)
+def _one_thread():
+    # Tiny models gain nothing from threads, and on a shared 2-core machine waiting threads
+    # make every small kernel call many times slower.
+    before = torch.get_num_threads()
+    torch.set_num_threads(1)
+    yield
+    torch.set_num_threads(before)
+
+
+def _load(folder, **kw):
+    model = AutoModelForCausalLM.from_pretrained(folder, **kw).eval()
+    return model, AutoTokenizer.from_pretrained(folder)
+
+
+@pytest.fixture(scope="module")
+def llama(tmp_path_factory):
+    return _load(build_tiny_model(tmp_path_factory.mktemp("llama"), arch="llama", seed=0))
+
+
+@pytest.fixture(scope="module")
+def gemma(tmp_path_factory):
+    # tests/tiny.py's gemma3 ties input and output embeddings; with Gemma's embedding scaling
+    # its greedy output repeats one token whatever the context, which would hide a wrong
+    # sliding window. Same config and tokenizer, untied, gives context-dependent text.
+    folder = build_tiny_model(tmp_path_factory.mktemp("gemma"), arch="gemma3", seed=0)
+    tok = AutoTokenizer.from_pretrained(folder)
+    config = AutoModelForCausalLM.from_pretrained(folder).config
+    config.tie_word_embeddings = False
+    torch.manual_seed(0)
+    model = AutoModelForCausalLM.from_config(config).eval()
+    return model, tok
+
+
+def _stops_across_tokens(model, tok, prompts, n=2):
+    """Two-character stop strings that straddle a token boundary inside real completions."""
+    stops = []
+    for p in prompts:
+        ids, _, _ = reference_trace(model, tok, p, max_new_tokens=MAX_NEW)
+        for k in range(4, len(ids) - 1):
+            b = len(tok.decode(ids[:k], skip_special_tokens=True))
+            full = tok.decode(ids[:k + 1], skip_special_tokens=True)
+            s = full[b - 1:b + 1]
+            if len(s) == 2 and "\ufffd" not in s and s.isprintable() and s not in stops:
+                stops.append(s)
+                break
+        if len(stops) == n:
+            return stops
+    raise AssertionError("no completion long enough to take stop strings from")
+
+
+def _compare(got: list[Generation], ref: list[Generation]) -> int:
+    """Assert equality except flagged ties; return the number of ties."""
+    assert len(got) == len(ref)
+    ties = 0
+    for i, (g, r) in enumerate(zip(got, ref)):
+        assert g.prompt_tokens == r.prompt_tokens, i
+        same = (g.text, g.new_tokens, g.finish) == (r.text, r.new_tokens, r.finish)
+        if not same:
+            assert min(r.min_margin, g.min_margin) < TIE_MARGIN, (i, g, r)
+            ties += 1
+            continue
+        # The same tokens were chosen from logits that agree to float32 rounding.
+        assert math.isclose(g.min_margin, r.min_margin, abs_tol=1e-4), (i, g.min_margin, r.min_margin)
+    return ties
+
+
+@pytest.fixture(scope="module")
+def llama_case(llama):
+    model, tok = llama
+    stop = _stops_across_tokens(model, tok, PROMPTS[:6])
+    ref = reference_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, stop=stop)
+    return stop, ref
+
+
+def test_reference_case_exercises_every_ending(llama_case):
+    stop, ref = llama_case
+    finishes = {r.finish for r in ref}
+    assert "stop" in finishes and "length" in finishes
+    # Stop strings were taken across token boundaries, and are excluded from the text.
+    assert all(not any(s in r.text for s in stop) for r in ref)
+
+
+@pytest.mark.parametrize("batch_size", [1, 3, 8])
+@pytest.mark.parametrize("reuse_prefix", [True, False])
+def test_engine_equals_reference(llama, llama_case, batch_size, reuse_prefix):
+    model, tok = llama
+    stop, ref = llama_case
+    got = greedy_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, stop=stop,
+                          batch_size=batch_size, reuse_prefix=reuse_prefix)
+    assert _compare(got, ref) <= 1
+
+
+def test_batch_refills_and_matches(llama, llama_case, monkeypatch):
+    model, tok = llama
+    stop, ref = llama_case
+    merges = []
+    real_combine = engine_mod.combine
+
+    def counting(parts, reserve):
+        merges.append(len(parts))
+        return real_combine(parts, reserve)
+
+    monkeypatch.setattr(engine_mod, "combine", counting)
+    got = greedy_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, stop=stop, batch_size=4)
+    # 14 questions through 4 rows: running rows and freshly prefilled ones were merged.
+    assert merges.count(2) >= 2
+    assert _compare(got, ref) <= 1
+
+
+def test_eos_ends_rows(llama):
+    model, tok = llama
+    ids, _, _ = reference_trace(model, tok, PROMPTS[1], max_new_tokens=MAX_NEW)
+    saved = model.generation_config.eos_token_id
+    model.generation_config.eos_token_id = ids[5]  # a token the model really emits
+    try:
+        ref = reference_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW)
+        got = greedy_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, batch_size=5)
+    finally:
+        model.generation_config.eos_token_id = saved
+    assert ref[1].finish == "eos" and ref[1].new_tokens <= 6
+    assert _compare(got, ref) <= 1
+
+
+def test_runs_are_deterministic(llama, llama_case):
+    model, tok = llama
+    stop, _ = llama_case
+    a = greedy_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, stop=stop, batch_size=5)
+    b = greedy_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, stop=stop, batch_size=5)
+    assert [(g.text, g.new_tokens, g.min_margin, g.finish) for g in a] == \
+        [(g.text, g.new_tokens, g.min_margin, g.finish) for g in b]
+
+
+def test_common_prefix_is_taken_over_tokens_not_text(llama):
+    model, tok = llama
+    # A shared text ending in a space: alone it tokenises with a trailing space token, inside
+    # the prompts the space joins the next word; only a token-level prefix is safe to reuse.
+    prompts = ["The answer is 14", "The answer is 2880"]
+    enc = tok(prompts, add_special_tokens=False)["input_ids"]
+    alone = tok("The answer is ", add_special_tokens=False)["input_ids"]
+    assert enc[0][:len(alone)] != alone
+    assert common_prefix_length(enc) < len(alone)
+    ref = reference_generate(model, tok, prompts, max_new_tokens=8)
+    assert _compare(greedy_generate(model, tok, prompts, max_new_tokens=8), ref) == 0
+
+
+def test_one_new_token_and_single_prompt(llama):
+    model, tok = llama
+    ref = reference_generate(model, tok, PROMPTS[:3], max_new_tokens=1)
+    got = greedy_generate(model, tok, PROMPTS[:3], max_new_tokens=1, batch_size=2)
+    assert _compare(got, ref) == 0 and all(g.new_tokens == 1 for g in got)
+    one = greedy_generate(model, tok, PROMPTS[:1], max_new_tokens=MAX_NEW)
+    assert _compare(one, reference_generate(model, tok, PROMPTS[:1], max_new_tokens=MAX_NEW)) == 0
+
+
+def test_eager_attention_takes_additive_masks(tmp_path):
+    folder = build_tiny_model(tmp_path / "m", arch="llama", seed=1)
+    model, tok = _load(folder, attn_implementation="eager")
+    ref = reference_generate(model, tok, PROMPTS[:8], max_new_tokens=12)
+    got = greedy_generate(model, tok, PROMPTS[:8], max_new_tokens=12, batch_size=3)
+    assert _compare(got, ref) <= 1
+
+
+@pytest.fixture(scope="module")
+def gemma_ref(gemma):
+    model, tok = gemma
+    return reference_generate(model, tok, PROMPTS, max_new_tokens=16)
+
+
+@pytest.mark.parametrize("batch_size", [3, 8])
+def test_gemma3_sliding_window_equals_reference(gemma, gemma_ref, batch_size):
+    model, tok = gemma
+    window = model.config.sliding_window
+    kinds = set(model.config.layer_types)
+    assert kinds == {"sliding_attention", "full_attention"}
+    # Prompts far longer than the window: a window counted in columns rather than real
+    # tokens (padding, gaps) would change the text.
+    assert min(len(tok(p)["input_ids"]) for p in PROMPTS) > 4 * window
+    got = greedy_generate(model, tok, PROMPTS, max_new_tokens=16, batch_size=batch_size)
+    assert _compare(got, gemma_ref) <= 1
+
+
+def test_bfloat16_model_runs(llama):
+    model, tok = llama
+    bf = AutoModelForCausalLM.from_config(model.config).eval()
+    bf.load_state_dict(model.state_dict())
+    bf = bf.to(torch.bfloat16)
+    bf.generation_config = model.generation_config
+    got = greedy_generate(bf, tok, PROMPTS, max_new_tokens=12, batch_size=4)
+    again = greedy_generate(bf, tok, PROMPTS, max_new_tokens=12, batch_size=4)
+    assert [g.text for g in got] == [g.text for g in again]
+    assert all(g.finish == "length" and g.new_tokens == 12 for g in got)
+    # Same code path as float32: a batch of one continues the prefix like the reference.
+    ref = reference_generate(bf, tok, PROMPTS[:2], max_new_tokens=12)
+    assert [g.prompt_tokens for g in got[:2]] == [r.prompt_tokens for r in ref]
+
+
+def test_callbacks_and_seconds(llama):
+    model, tok = llama
+    seen, ticks = [], []
+    got = greedy_generate(model, tok, PROMPTS, max_new_tokens=6, batch_size=4,
+                          on_result=lambda i, g: seen.append((i, g.text)), progress=ticks.append)
+    assert sorted(i for i, _ in seen) == list(range(len(PROMPTS)))
+    assert dict(seen) == {i: g.text for i, g in enumerate(got)}
+    assert sum(ticks) == len(PROMPTS)
+    assert all(g.seconds > 0 for g in got)
+
+
+def test_key_value_bytes_match_the_cache(llama):
+    model, tok = llama
+    from evalkit.backends.kvslab import AttentionPlan
+
+    ids = tok(PROMPTS[0], add_special_tokens=False)["input_ids"]
+    slab = Slab.for_prefix(model, AttentionPlan(model), ids, chunk=16)
+    assert slab.nbytes() == kv_bytes_per_token(model) * slab.capacity
+    assert auto_batch_size(model, 200, n_prompts=3) == 3
+    assert 1 <= auto_batch_size(model, 10**9, n_prompts=100) <= 32
+
+
+def test_user_errors(llama):
+    model, tok = llama
+    with pytest.raises(BackendError, match="max_new_tokens"):
+        greedy_generate(model, tok, PROMPTS, max_new_tokens=0)
+    with pytest.raises(BackendError, match="empty"):
+        greedy_generate(model, tok, ["Question:", ""], max_new_tokens=4)
+    assert greedy_generate(model, tok, [], max_new_tokens=4) == []
