@@ -77,9 +77,11 @@ def render_like(v: Fraction, template: str) -> str:
     """
     places = decimals_of(template)
     text = _decimal_text(Fraction(v), places)
+    sign, body = ("-", text[1:]) if text.startswith("-") else ("", text)
     if "," in template:
-        sign, body = ("-", text[1:]) if text.startswith("-") else ("", text)
         whole, _, frac = body.partition(".")
-        whole = f"{int(whole):,}"
-        text = sign + whole + ("." + frac if frac else "")
-    return text + ("%" if template.rstrip().endswith("%") else "")
+        body = f"{int(whole):,}" + ("." + frac if frac else "")
+    currency = re.match(r"\s*[-\u2212]?\s*([$\u20ac\u00a3\u00a5])", template)
+    if currency:  # "-$3" keeps its currency sign after the minus
+        body = currency.group(1) + body
+    return sign + body + ("%" if template.rstrip().endswith("%") else "")

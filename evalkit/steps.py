@@ -389,17 +389,20 @@ def claim_holds(value: Fraction | None, claimed: Fraction, claimed_text: str,
 
 
 def _claimed_literal(toks, j: int):
-    """Parse the claimed number at token ``j``: (first token, last token, approx) or None."""
+    """The claimed number at token ``j``: (first token, literal's first token, last token, approx) or None."""
     n = len(toks)
     approx = False
     if j < n and toks[j][0] == APPROX:
         approx, j = True, j + 1
     first = j
-    if j < n and toks[j][0] == CUR:
-        j += 1
-    lit_start = j
-    if j < n and toks[j][0] == OP and toks[j][3] == "-" and j + 1 < n and toks[j][2] == toks[j + 1][1]:
-        j += 1
+    if j + 1 < n and toks[j][3] == "-" and toks[j + 1][0] == CUR and toks[j][2] == toks[j + 1][1]:
+        lit_start, j = j, j + 2  # "-$3": the sign stays in the claimed literal
+    else:
+        if j < n and toks[j][0] == CUR:
+            j += 1
+        lit_start = j
+        if j + 1 < n and toks[j][3] == "-" and toks[j][2] == toks[j + 1][1]:
+            j += 1
     if j >= n or toks[j][0] != NUM:
         return None
     last = j
