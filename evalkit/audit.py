@@ -166,35 +166,48 @@ def truncate_chain(chain: str, steps: list[Step], fraction: float) -> str:
 _DELTAS = (-3, -2, -1, 1, 2, 3)
 
 
-def inject_mistake(chain: str, steps: list[Step], index: int,
-                   rng_or_delta: random.Random | Real | Fraction) -> tuple[str, Step, Fraction]:
-    """Change one step's claimed result; return (chain up to and including the new result, the step, its new claimed value).
-
-    With a ``random.Random`` the written number moves by a whole 1, 2 or 3 either way (never
-    across zero), so the corrupted claim never holds; with a number the written number moves
-    by exactly that much. The new result keeps the old one's look (decimals, commas, %).
-    """
-    step = steps[index]
+def _changed(chain: str, step: Step, delta: Fraction) -> tuple[str, Step]:
+    """The chain up to the step's result, with the written number moved by ``delta``; the step re-read."""
     r0, r1 = step.result_span
     literal = chain[r0:r1]
     bare = literal[:-1] if literal.endswith("%") else literal
     num, slash, den = bare.partition("/")
-    shown = parse_literal(num)
-    if isinstance(rng_or_delta, random.Random):
-        whole = parse_literal(bare)
-        delta = Fraction(rng_or_delta.choice([d for d in _DELTAS if whole < 0 or whole + d >= 0]))
-    else:
-        delta = _exact(rng_or_delta)
-        if delta == 0:
-            raise ValueError("a delta of 0 would not change the step")
     if slash:
-        new_literal = f"{render_like(shown + delta * int(den), num)}/{den}"
+        new_literal = f"{render_like(parse_literal(num) + delta * int(den), num)}/{den}"
     else:
-        new_literal = render_like(shown + delta, literal)
+        new_literal = render_like(parse_literal(num) + delta, literal)
     if parse_literal(new_literal.rstrip("%")) == parse_literal(bare):
         raise ValueError(f"a delta of {delta} is below the precision of {literal!r}")
     text = chain[:r0] + new_literal
-    again = [s for s in find_steps(text) if s.result_span[0] == r0]
+    # An annotation's step starts two characters later once its closing ">>" is cut off.
+    again = [s for s in find_steps(text) if s.start in (step.start, step.start + 2)]
     if not again:
-        raise ValueError(f"step {index} could not be found again after changing its result")
-    return text, step, again[-1].claimed
+        raise ValueError(f"the step {step.text!r} could not be read again after changing its result")
+    return text, again[-1]
+
+
+def inject_mistake(chain: str, steps: list[Step], index: int,
+                   rng_or_delta: random.Random | Real | Fraction) -> tuple[str, Step, Fraction]:
+    """Change one step's claimed result; return (chain up to and including the new result, the step, its new claimed value).
+
+    With a ``random.Random`` the written number moves by a whole 1, 2 or 3 either way, never
+    across zero and never onto a value that would still hold (an "≈ 3" tolerates 1 either
+    way); with a number it moves by exactly that much. The new result keeps the old one's
+    look (decimals, thousands commas, currency, %).
+    """
+    step = steps[index]
+    if not isinstance(rng_or_delta, random.Random):
+        delta = _exact(rng_or_delta)
+        if delta == 0:
+            raise ValueError("a delta of 0 would not change the step")
+        text, again = _changed(chain, step, delta)
+        return text, step, again.claimed
+    literal = chain[slice(*step.result_span)]
+    whole = parse_literal(literal.rstrip("%"))
+    deltas = [d for d in _DELTAS if whole < 0 or whole + d >= 0]
+    rng_or_delta.shuffle(deltas)
+    for d in deltas:
+        text, again = _changed(chain, step, Fraction(d))
+        if not again.holds:
+            return text, step, again.claimed
+    raise ValueError(f"no change of 1 to 3 makes the step {step.text!r} wrong")

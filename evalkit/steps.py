@@ -78,8 +78,8 @@ _TOKEN = re.compile(
 _OPS = {"+": "+", "-": "-", "\u2212": "-", "*": "*", "\u00d7": "*", "\u00b7": "*", "\u22c5": "*",
         "x": "*", "times": "*", "multiplied by": "*", "/": "/", "\u00f7": "/", "divided by": "/",
         "plus": "+", "minus": "-", "of": "of"}
-# Words that end a phrase rather than name a unit ("5 and 3 + 4 = 7").
 _NUMBER_IN = re.compile(r"[-\u2212]?(?:\d{1,3}(?:,\d{3})+(?:\.\d+)?|\d+(?:\.\d+)?|\.\d+)(?:/\d+)?%?")
+# Words that end a phrase rather than name a unit ("5 and 3 + 4 = 7").
 _STOPWORDS = frozenset("and or so then thus hence therefore which but because since if when".split())
 
 
@@ -128,6 +128,11 @@ def _tokenize(text: str) -> list[tuple[int, int, int, str]]:
     return out
 
 
+def _is_sign(tok) -> bool:
+    """A minus sign written as a symbol (the word "minus" is only ever binary)."""
+    return tok[0] == OP and tok[3] == "-" and tok[2] - tok[1] == 1
+
+
 def _is_unit(tok) -> bool:
     return tok[0] == WORD and tok[3] not in _STOPWORDS
 
@@ -162,7 +167,7 @@ def _operand_ends_at(toks, k: int, floor: int) -> bool:
 def _with_unary(toks, s: int, floor: int) -> int:
     """Extend an operand starting at ``s`` over an attached minus sign that is not a binary one."""
     m = s - 1
-    if m > floor and toks[m][0] == OP and toks[m][3] == "-" and toks[m][2] == toks[s][1] \
+    if m > floor and _is_sign(toks[m]) and toks[m][2] == toks[s][1] \
             and not _operand_ends_at(toks, m - 1, floor):
         return m
     return s
@@ -395,13 +400,13 @@ def _claimed_literal(toks, j: int):
     if j < n and toks[j][0] == APPROX:
         approx, j = True, j + 1
     first = j
-    if j + 1 < n and toks[j][3] == "-" and toks[j + 1][0] == CUR and toks[j][2] == toks[j + 1][1]:
+    if j + 1 < n and _is_sign(toks[j]) and toks[j + 1][0] == CUR and toks[j][2] == toks[j + 1][1]:
         lit_start, j = j, j + 2  # "-$3": the sign stays in the claimed literal
     else:
         if j < n and toks[j][0] == CUR:
             j += 1
         lit_start = j
-        if j + 1 < n and toks[j][3] == "-" and toks[j][2] == toks[j + 1][1]:
+        if j + 1 < n and _is_sign(toks[j]) and toks[j][2] == toks[j + 1][1]:
             j += 1
     if j >= n or toks[j][0] != NUM:
         return None
@@ -473,7 +478,10 @@ def _step_at(text: str, toks, e: int, memo: dict) -> Step | None:
     approx = approx or toks[e][3] in ("\u2248", "~=")
     r0, r1 = toks[lit_start][1], toks[last][2]
     claimed_text = text[r0:r1]
-    claimed = parse_literal(claimed_text)
+    try:
+        claimed = parse_literal(claimed_text)
+    except (ValueError, ZeroDivisionError):  # defensive: the token checks above should prevent it
+        return None
     if claimed_text.endswith("%") and _times_hundred(node):
         claimed *= 100
     if _rewriting(toks, first, last, value, claimed, memo):

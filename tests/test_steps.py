@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 from evalkit.numbers import format_value
 from evalkit.steps import claim_holds, evaluate, find_steps, pending_expression
 
-PROPERTY = settings(max_examples=150, deadline=None, derandomize=True,
+PROPERTY = settings(max_examples=100, deadline=None, derandomize=True,
                     suppress_health_check=[HealthCheck.too_slow])
 
 UNITS = ["crates", "kg", "seedlings", "trays", "hours", "km", "bikes"]
