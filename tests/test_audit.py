@@ -210,3 +210,13 @@ def test_inject_refuses_a_change_below_the_written_precision():
         inject_mistake(chain, find_steps(chain), 0, Fraction(1, 100))
     with pytest.raises(ValueError):
         inject_mistake(chain, find_steps(chain), 0, 0)
+
+
+@pytest.mark.parametrize("chain", ["Each bench gets 7 / 2 ≈ 3 trays.", "A crate holds 3 * 4 = 13 tubes."])
+def test_a_random_mistake_never_lands_on_a_value_that_holds(chain):
+    # "≈ 3" for 3.5 tolerates 4; a step that was already wrong must not be moved onto the truth.
+    steps = find_steps(chain)
+    for seed in range(40):
+        text, _, new = inject_mistake(chain, steps, 0, random.Random(seed))
+        (again,) = find_steps(text)
+        assert again.claimed == new and not again.holds, text
