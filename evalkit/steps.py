@@ -18,7 +18,8 @@ Expressions
     sign may precede a number and up to three unit words may follow one (``3 crates``,
     ``$12 per crate``, ``60 km/h``); both are dropped from the normalised expression. The
     expression is the longest well-formed run of tokens that ends at the equality sign,
-    capped at 64 tokens (a longer run is skipped rather than judged on a fragment).
+    capped at 64 tokens (a longer run is skipped rather than judged on a fragment). A
+    quantity in mixed units (``1 hour 30 minutes``) on either side of the sign is not judged.
 
 Chained equalities
     Each equality sign is a claim about the expression immediately before it, back to the
@@ -79,6 +80,11 @@ _OPS = {"+": "+", "-": "-", "\u2212": "-", "*": "*", "\u00d7": "*", "\u00b7": "*
         "x": "*", "times": "*", "multiplied by": "*", "/": "/", "\u00f7": "/", "divided by": "/",
         "plus": "+", "minus": "-", "of": "of"}
 _NUMBER_IN = re.compile(r"[-\u2212]?(?:\d{1,3}(?:,\d{3})+(?:\.\d+)?|\d+(?:\.\d+)?|\.\d+)(?:/\d+)?%?")
+# Units that combine with a second number into one quantity ("2 hours 30 minutes").
+_MEASURES = frozenset(
+    "hour hours hr hrs h minute minutes min mins second seconds sec secs day days week weeks "
+    "month months year years foot feet ft inch inches yard yards mile miles pound pounds lb lbs "
+    "ounce ounces oz dollar dollars cent cents pence m cm mm km kg g l ml".split())
 # Words that end a phrase rather than name a unit ("5 and 3 + 4 = 7").
 _STOPWORDS = frozenset("and or so then thus hence therefore which but because since if when".split())
 
@@ -421,6 +427,9 @@ def _claimed_literal(toks, j: int):
     if last + 2 < n and toks[last + 1][3] == ":" and toks[last + 1][1] == toks[last][2] \
             and toks[last + 2][0] == NUM:
         return None  # "10:45" is a clock time
+    if last + 2 < n and toks[last + 1][0] == WORD and toks[last + 1][3] in _MEASURES \
+            and toks[last + 2][0] == NUM:
+        return None  # "2 hours 45 minutes" is one quantity in mixed units
     return first, lit_start, last, approx
 
 
@@ -437,6 +446,9 @@ def _lhs(toks, hi: int, memo: dict):
         return memo[hi]
     found = None
     s = _expr_start(toks, hi)
+    if s is not None and s >= 2 and toks[s - 1][0] == WORD and toks[s - 1][3] in _MEASURES \
+            and toks[s - 2][0] == NUM:
+        s = None  # "1 hour 30 minutes + 45 minutes": the expression starts mid-quantity
     if s is not None:
         try:
             node = _Parser(toks, s, hi).parse()

@@ -240,6 +240,9 @@ def test_rounding_rule_examples(text, holds):
     ("The ferry leaves at 10:30 + 15 = 10:45", []),  # clock times are not claims
     ("Let x = 3 * 4 = 12", [("3 * 4", 12)]),
     ("We need 3 + 4 = seven tubes", []),  # the claim must be a number
+    ("2 hours 30 minutes + 45 minutes = 3 hours 15 minutes", []),  # mixed units: not judged
+    ("1 hour 30 minutes + 45 minutes = 135 minutes", []),
+    ("90 minutes + 45 minutes = 135 minutes", [("90 + 45", 135)]),
 ])
 def test_step_examples(text, expected):
     assert [(s.expression, s.claimed) for s in find_steps(text)] == [(e, Fraction(c)) for e, c in expected]
