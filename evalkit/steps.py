@@ -14,7 +14,8 @@ What counts as a step
 Expressions
     Numbers (``1,200``, ``3.5``, ``.5``, ``-3`` with the sign attached), ``+ - * / x × ÷ ·``,
     the words ``plus``, ``minus``, ``times``, ``multiplied by``, ``divided by``, parentheses,
-    percentages (``20%`` or ``20 percent`` is 1/5; ``20% of 50`` is ``20% * 50``). A currency
+    percentages (``20%`` or ``20 percent`` is 1/5; ``of`` after a percentage multiplies and
+    binds tighter than ``*`` and ``/``: ``100 / 20% of 50`` is 100 / 10). A currency
     sign may precede a number and up to three unit words may follow one (``3 crates``,
     ``$12 per crate``, ``60 km/h``); both are dropped from the normalised expression. The
     expression is the longest well-formed run of tokens that ends at the equality sign,
