@@ -25,15 +25,20 @@ wins:
    and repairing the first wrong step does not give the gold answer: a slip alone does not
    explain the error (the plan is wrong too, or a second, independent slip follows).
 
-Contradiction comes before slip and reasoning because those two explain a wrong answer
-through the chain, which is only meaningful when the answer is the chain's result.
+"Equals the last step's result" means within the same tolerance. Contradiction comes
+before slip and reasoning because those two explain a wrong answer through the chain,
+which is only meaningful when the answer is the chain's result. Right answers are judged
+on their steps alone: a right answer that differs from the last step's result is still
+``sound`` (or ``lucky``). A chain that ends with a check step (``42 / 7 = 6``) and then
+gives a wrong answer is a ``contradiction``.
 
 The repair (``repair_chain``)
     Recompute the first step that does not hold exactly. Then walk the later steps in order:
     a step with an operand equal to the claimed result of a step already corrected has that
     operand replaced by the corrected value and is recomputed; if its result changes, it is
-    corrected in turn, and so on. Steps that use no corrected value keep their claimed
-    results (a later independent slip stays). A first wrong step that divides by zero
+    corrected in turn, and so on. A recomputed step is computed exactly, so a second slip
+    in a step that depends on the first is corrected with it; steps that use no corrected
+    value keep their claimed results (a later independent slip stays). A first wrong step that divides by zero
     cannot be repaired. Operands are matched by value, so a constant that happens to equal
     a wrong result is replaced too.
 """
