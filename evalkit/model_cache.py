@@ -309,9 +309,10 @@ def save_converted(model, tokenizer, sha256: str, source_file: str, ref: str,
     sees half a conversion; when two processes convert at once the first rename wins.
     """
     final = converted_dir(sha256, cache_dir)
-    final.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(dir=final.parent, prefix=f".tmp-{final.name}-"))
+    tmp: Path | None = None
     try:
+        final.parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(dir=final.parent, prefix=f".tmp-{final.name}-"))
         model.save_pretrained(tmp)
         tokenizer.save_pretrained(tmp)
         _write_converted_marker(tmp, sha256, source_file, ref)
@@ -327,7 +328,8 @@ def save_converted(model, tokenizer, sha256: str, source_file: str, ref: str,
                       f"the next load will dequantize the GGUF again", RuntimeWarning, stacklevel=3)
         return None
     finally:
-        shutil.rmtree(tmp, ignore_errors=True)
+        if tmp is not None:
+            shutil.rmtree(tmp, ignore_errors=True)
 
 
 # tokenizer_config.json keys that carry behaviour; the rest name the class or where it came from.

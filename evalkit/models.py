@@ -326,10 +326,13 @@ def list_models(cache_dir: str | Path | None = None):
 
 def _load_errors() -> tuple[type[BaseException], ...]:
     """What a bad model file or folder makes transformers, torch or safetensors raise."""
+    import struct
+
     from safetensors import SafetensorError
 
+    # struct.error, EOFError and IndexError come out of the GGUF reader on truncated files.
     return (OSError, ValueError, RuntimeError, KeyError, TypeError, ImportError, AttributeError,
-            SafetensorError)
+            IndexError, EOFError, struct.error, SafetensorError)
 
 
 def _from_pretrained(what: str, target: str, torch_dtype, *, tokenizer_from=None,

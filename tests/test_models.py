@@ -21,7 +21,7 @@ import torch
 from evalkit.errors import ModelError
 from evalkit.model_cache import WheelPart, converted_dir
 from evalkit.models import PACKAGED_MODELS, PackagedModel, fetch, list_models, load, resolve
-from tests.tiny import SPECIAL_TOKENS, build_tiny_model
+from tests.tiny import SPECIAL_TOKENS, build_tiny_gguf, build_tiny_model
 
 PACKAGED_NAMES = [m.name for m in PACKAGED_MODELS]
 
@@ -405,3 +405,88 @@ def test_load_rejects_bad_dtype_threads_and_broken_folder(cache, tmp_path, tiny_
     (broken / "model.safetensors").write_bytes(b"not safetensors")
     with pytest.raises(ModelError, match=r"cannot load model '.*broken' \(folder .*broken\)"):
         load(str(broken), threads=1)
+
+
+# ---------------------------------------------------------------- GGUF files and the dequantized cache
+
+
+@pytest.fixture(scope="module")
+def tiny_gguf(tmp_path_factory) -> Path:
+    return build_tiny_gguf(tmp_path_factory.mktemp("gguf") / "tiny-workshop.gguf", seed=0, chat=True)
+
+
+@pytest.fixture(scope="module")
+def tiny_gguf_reference(tmp_path_factory) -> Path:
+    # The same seed gives the same weights and tokenizer as a plain transformers folder.
+    return build_tiny_model(tmp_path_factory.mktemp("gguf-ref") / "folder", arch="llama", seed=0, chat=True)
+
+
+TEXTS = ["The ferry leaves at 09:15.", "Q: 3 * 14?\n\nA: 42 <|im_end|>", "café  ünï"]
+
+
+def _encode_and_logits(loaded, text):
+    ids = loaded.tokenizer(text, return_tensors="pt")
+    with torch.inference_mode():
+        return ids["input_ids"][0].tolist(), loaded.model(**ids).logits
+
+
+def test_gguf_load_converts_once_then_reads_the_cache(cache, tiny_gguf, tiny_gguf_reference):
+    reference = load(str(tiny_gguf_reference), threads=1)
+    first = load(str(tiny_gguf), threads=1)
+    assert first.source.kind == "gguf" and first.from_cache is False
+    sha = _sha(tiny_gguf.read_bytes())
+    assert first.source.sha256 == sha
+    conv = converted_dir(sha)
+    marker = json.loads((conv / "evalkit-converted.json").read_text())
+    assert marker["source_sha256"] == sha and marker["source_file"] == tiny_gguf.name
+    assert (conv / "model.safetensors").is_file() and (conv / "tokenizer.json").is_file()
+    assert [p.name for p in conv.parent.iterdir() if p.name.startswith(".")] == []
+
+    second = load(str(tiny_gguf), threads=1)
+    assert second.from_cache is True
+    assert second.source.instruct is True and second.has_chat_template
+    assert second.tokenizer.chat_template == first.tokenizer.chat_template == reference.tokenizer.chat_template
+    assert second.tokenizer.padding_side == "left" and second.tokenizer.pad_token == SPECIAL_TOKENS["pad"]
+    assert second.n_parameters == first.n_parameters == reference.n_parameters
+    for text in TEXTS:
+        ref_ids, ref_logits = _encode_and_logits(reference, text)
+        for loaded in (first, second):
+            ids, logits = _encode_and_logits(loaded, text)
+            # Reference: transformers' own loading of the same weights from safetensors, and
+            # its GGUF reader undoing llama.cpp's q/k row order (tests/tiny.py writes it).
+            assert ids == ref_ids
+            assert torch.equal(logits, ref_logits)
+        assert second.tokenizer.decode(ref_ids) == text
+
+
+def test_gguf_bfloat16_is_cast_after_conversion_and_cache_stays_float32(cache, tiny_gguf):
+    first = load(str(tiny_gguf), dtype="bfloat16", threads=1)
+    assert first.model.dtype == torch.bfloat16 and first.from_cache is False
+    conv = converted_dir(first.source.sha256)
+    assert json.loads((conv / "config.json").read_text())["dtype"] == "float32"
+    second = load(str(tiny_gguf), dtype="bfloat16", threads=1)
+    assert second.from_cache is True and second.model.dtype == torch.bfloat16
+
+
+def test_gguf_converted_folder_without_marker_is_rebuilt(cache, tiny_gguf):
+    conv = converted_dir(_sha(tiny_gguf.read_bytes()))
+    conv.mkdir(parents=True)
+    (conv / "config.json").write_text("{}")  # as an interrupted foreign write might leave it
+    loaded = load(str(tiny_gguf), threads=1)
+    assert loaded.from_cache is False
+    assert json.loads((conv / "evalkit-converted.json").read_text())["source_file"] == tiny_gguf.name
+
+
+def test_gguf_cache_that_cannot_be_written_warns_and_still_loads(cache, tiny_gguf):
+    cache.mkdir(parents=True, exist_ok=True)
+    (cache / "converted").write_text("a file where the folder should be")
+    with pytest.warns(RuntimeWarning, match="could not save the dequantized model"):
+        loaded = load(str(tiny_gguf), threads=1)
+    assert loaded.from_cache is False and not loaded.model.training
+
+
+def test_broken_gguf_raises_model_error_naming_the_file(cache, tmp_path):
+    bad = tmp_path / "truncated.gguf"
+    bad.write_bytes(b"GGUF\x03\x00\x00\x00")
+    with pytest.raises(ModelError, match=r"cannot load model '.*truncated\.gguf' \(GGUF .*truncated\.gguf\)"):
+        load(str(bad), threads=1)

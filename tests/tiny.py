@@ -12,9 +12,10 @@ Used by model-loading tests and by runner tests that need a model that actually 
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
-__all__ = ["build_tiny_model", "TINY_CHAT_TEMPLATE", "SPECIAL_TOKENS", "ARCHITECTURES"]
+__all__ = ["build_tiny_model", "build_tiny_gguf", "TINY_CHAT_TEMPLATE", "SPECIAL_TOKENS", "ARCHITECTURES"]
 
 # A chat template in the ChatML shape many small instruct models use; jinja, rendered by
 # transformers' own sandboxed environment in apply_chat_template.
@@ -160,3 +161,93 @@ def build_tiny_model(
     model.save_pretrained(folder)
     tok.save_pretrained(folder)
     return folder
+
+
+def _permute_for_gguf(weight, n_head: int):
+    """Reorder q/k projection rows the way llama.cpp's converter does for llama models.
+
+    llama.cpp applies rotary embeddings to interleaved pairs, transformers to split halves;
+    GGUF files hold the llama.cpp order and transformers undoes it when loading.
+    """
+    return (
+        weight.reshape(n_head, 2, weight.shape[0] // n_head // 2, *weight.shape[1:])
+        .swapaxes(1, 2)
+        .reshape(weight.shape)
+    )
+
+
+def build_tiny_gguf(path: str | Path, seed: int = 0, chat: bool = True) -> Path:
+    """Write a tiny llama model as a float32 GGUF file (weights and tokenizer); return its path.
+
+    The weights and tokenizer are those of ``build_tiny_model(..., arch="llama")`` with the same
+    seed, so loading the GGUF must give that folder's logits.
+    """
+    import tempfile
+
+    import gguf
+    import numpy as np
+    from transformers import AutoModelForCausalLM, AutoTokenizer
+
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with tempfile.TemporaryDirectory() as tmp:
+        folder = build_tiny_model(tmp, arch="llama", seed=seed, chat=chat)
+        tok = AutoTokenizer.from_pretrained(folder)
+        model = AutoModelForCausalLM.from_pretrained(folder)
+        backend = json.loads((folder / "tokenizer.json").read_text(encoding="utf-8"))
+    cfg = model.config
+    head_dim = cfg.hidden_size // cfg.num_attention_heads
+
+    writer = gguf.GGUFWriter(str(path), "llama")
+    writer.add_name("evalkit tiny llama")
+    writer.add_block_count(cfg.num_hidden_layers)
+    writer.add_context_length(cfg.max_position_embeddings)
+    writer.add_embedding_length(cfg.hidden_size)
+    writer.add_feed_forward_length(cfg.intermediate_size)
+    writer.add_head_count(cfg.num_attention_heads)
+    writer.add_head_count_kv(cfg.num_key_value_heads)
+    writer.add_rope_dimension_count(head_dim)
+    writer.add_rope_freq_base(float(cfg.rope_parameters["rope_theta"]))
+    writer.add_layer_norm_rms_eps(cfg.rms_norm_eps)
+    writer.add_vocab_size(cfg.vocab_size)
+    writer.add_file_type(gguf.LlamaFileType.ALL_F32)
+
+    vocab = sorted(tok.get_vocab().items(), key=lambda kv: kv[1])
+    specials = set(tok.all_special_tokens)
+    writer.add_tokenizer_model("gpt2")
+    writer.add_tokenizer_pre("gpt2")
+    writer.add_token_list([t for t, _ in vocab])
+    writer.add_token_types([
+        gguf.TokenType.CONTROL if t in specials else gguf.TokenType.NORMAL for t, _ in vocab
+    ])
+    merges = backend["model"]["merges"]
+    writer.add_token_merges([m if isinstance(m, str) else " ".join(m) for m in merges])
+    writer.add_eos_token_id(tok.eos_token_id)
+    writer.add_pad_token_id(tok.pad_token_id)
+    writer.add_add_bos_token(False)
+    if chat:
+        writer.add_chat_template(TINY_CHAT_TEMPLATE)
+
+    sd = {k: v.detach().float().numpy() for k, v in model.state_dict().items()}
+    writer.add_tensor("token_embd.weight", sd["model.embed_tokens.weight"])
+    writer.add_tensor("output_norm.weight", sd["model.norm.weight"])
+    for i in range(cfg.num_hidden_layers):
+        p = f"model.layers.{i}."
+        q = _permute_for_gguf(sd[p + "self_attn.q_proj.weight"], cfg.num_attention_heads)
+        k = _permute_for_gguf(sd[p + "self_attn.k_proj.weight"], cfg.num_key_value_heads)
+        for name, value in [
+            ("attn_norm", sd[p + "input_layernorm.weight"]),
+            ("ffn_norm", sd[p + "post_attention_layernorm.weight"]),
+            ("attn_q", q), ("attn_k", k),
+            ("attn_v", sd[p + "self_attn.v_proj.weight"]),
+            ("attn_output", sd[p + "self_attn.o_proj.weight"]),
+            ("ffn_gate", sd[p + "mlp.gate_proj.weight"]),
+            ("ffn_up", sd[p + "mlp.up_proj.weight"]),
+            ("ffn_down", sd[p + "mlp.down_proj.weight"]),
+        ]:
+            writer.add_tensor(f"blk.{i}.{name}.weight", np.ascontiguousarray(value, dtype=np.float32))
+    writer.write_header_to_file()
+    writer.write_kv_data_to_file()
+    writer.write_tensors_to_file()
+    writer.close()
+    return path
