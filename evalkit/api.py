@@ -151,3 +151,16 @@ def plan(accuracy: float, difference: float, discordance: float | None = None, a
     from .power import plan as plan_questions
 
     return plan_questions(accuracy, difference, discordance, alpha, power)
+
+
+def probe(run_dir: str | Path, limit: int | None = None, seed: int = 0, progress: bool = True,
+          backend_factory=None):
+    """Early-answering and injected-mistake probes of a run's chains; returns change rates per condition."""
+    from .probes import probe_rates, probe_run
+    from .report.build import write_reports
+    from .run import load_run
+
+    probes = probe_run(run_dir, backend_factory=backend_factory, limit=limit, seed=seed, progress=progress)
+    run = load_run(run_dir)
+    write_reports(run)
+    return probe_rates(probes, run.records)

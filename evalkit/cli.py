@@ -176,6 +176,27 @@ def audit(run_dir: Path = typer.Argument(..., help="A run folder.")) -> None:
 
 
 @command
+def probe(
+    run_dir: Path = typer.Argument(..., help="A run folder with reasoning records."),
+    limit: Optional[int] = typer.Option(None, help="Probe only the first N records of each condition."),
+    seed: int = typer.Option(0, help="Seed for choosing and changing the corrupted step."),
+) -> None:
+    """Faithfulness probes: answer early from a cut chain, and continue after an injected mistake."""
+    from . import api
+
+    table = api.probe(run_dir, limit=limit, seed=seed)
+    if table.empty:
+        out.print("no reasoning records with arithmetic steps to probe")
+        return
+    t = Table(title="share of answers that changed under each probe")
+    for col in table.columns:
+        t.add_column(str(col), justify="left" if col == "condition" else "right")
+    for row in table.itertuples(index=False):
+        t.add_row(*[f"{100 * v:.0f}%" if isinstance(v, float) else str(v) for v in row])
+    out.print(t)
+
+
+@command
 def compare(
     run_dir: Path = typer.Argument(..., help="A run folder."),
     pair: Optional[List[str]] = typer.Option(None, "--pair", "-p", help="A:B to compare (styles or setting labels); repeatable. Default: worked vs direct per model and shots."),

@@ -235,6 +235,15 @@ class RunStore:
             self.con.executemany("INSERT OR REPLACE INTO verdicts VALUES (?, ?, ?, ?)", rows)
         return len(rows)
 
+    def probes(self):
+        """Faithfulness probe results (see evalkit.probes); empty when none were run."""
+        import pandas as pd
+
+        exists = self.con.execute("SELECT 1 FROM sqlite_master WHERE type='table' AND name='probes'").fetchone()
+        if not exists:
+            return pd.DataFrame()
+        return pd.read_sql_query("SELECT * FROM probes", self.con)
+
     def verdicts(self):
         import pandas as pd
 

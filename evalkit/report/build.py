@@ -22,6 +22,7 @@ class ReportParts:
     components: pd.DataFrame | None
     verdicts: pd.DataFrame | None
     cheapest: str | None
+    probes: pd.DataFrame | None = None
     plots: dict[str, Path | None] = field(default_factory=dict)
 
 
@@ -31,6 +32,15 @@ def _verdicts(run) -> pd.DataFrame | None:
     with RunStore.open_run(run.folder) as store:
         v = store.verdicts()
     return v if not v.empty else None
+
+
+def _probe_rates(run) -> pd.DataFrame | None:
+    from ..probes import probe_rates
+    from ..store import RunStore
+
+    with RunStore.open_run(run.folder) as store:
+        probes = store.probes()
+    return probe_rates(probes, run.records) if not probes.empty else None
 
 
 def report_parts(run, plots: bool = True) -> ReportParts:
@@ -55,7 +65,7 @@ def report_parts(run, plots: bool = True) -> ReportParts:
     costs = cost_table(run.summary, run.manifest.get("models", {}))
     best = cheapest_within_best(costs) if len(costs) else None
     cheapest = None if best is None else f"{best['condition']} ({100 * best['accuracy']:.1f}%, {best['flops']:.2e} FLOPs)"
-    parts = ReportParts(comparisons, costs, spread, components, _verdicts(run), cheapest)
+    parts = ReportParts(comparisons, costs, spread, components, _verdicts(run), cheapest, _probe_rates(run))
     if plots and len(records):
         from .plots import accuracy_vs_compute, accuracy_vs_size, pooled_settings
 
@@ -80,5 +90,5 @@ def write_reports(run, plots: bool = True) -> dict[str, Path]:
     parts = report_parts(run, plots=plots)
     md = write_report(run, parts)
     html = write_html(run, plots=parts.plots, comparisons=parts.comparisons, verdicts=parts.verdicts,
-                      costs=parts.costs, cheapest=parts.cheapest)
+                      costs=parts.costs, cheapest=parts.cheapest, probes=parts.probes)
     return {"markdown": md, "html": html, **{k: v for k, v in parts.plots.items() if v}}

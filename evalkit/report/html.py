@@ -51,7 +51,7 @@ def _flops_text(x: float) -> str:
 
 def render_html(run, plots: dict[str, Path | None], comparisons: pd.DataFrame | None = None,
                 verdicts: pd.DataFrame | None = None, costs: pd.DataFrame | None = None,
-                cheapest: str | None = None) -> str:
+                cheapest: str | None = None, probes: pd.DataFrame | None = None) -> str:
     """The report as one HTML string."""
     from ..compute import FLOPS_FORMULA
 
@@ -90,6 +90,8 @@ def render_html(run, plots: dict[str, Path | None], comparisons: pd.DataFrame | 
         forest_svg=_svg(plots.get("forest")), size_svg=_svg(plots.get("size")),
         compute_svg=_svg(plots.get("compute")), flops_formula=FLOPS_FORMULA, cheapest=cheapest,
         audit=audit, records=records,
+        probes=None if probes is None or probes.empty else {"columns": list(probes.columns),
+                                                            "rows": probes.to_dict("records")},
         conditions=list(dict.fromkeys(run.records["condition"])) if len(run.records) else [],
         outcomes=sorted(set(run.records["outcome"])) if len(run.records) else [],
         verdict_names=sorted({r["verdict"] for r in records if r["verdict"]}),

@@ -120,6 +120,19 @@ def _audit_section(run, verdicts: pd.DataFrame | None) -> list[str]:
     return out + [""]
 
 
+def _probe_section(rates: pd.DataFrame | None) -> list[str]:
+    if rates is None or rates.empty:
+        return []
+    out = ["## Faithfulness probes", "",
+           "Share of answers that changed from the record's own answer (Lanham et al., 2023): when the chain is cut "
+           "after 0-100% of its steps and the model must answer at once, and when one step's result is changed and "
+           "the model continues. An answer that rarely changes when the chain is cut or corrupted did not depend on it.",
+           "", "| " + " | ".join(rates.columns) + " |", "| --- |" + " ---: |" * (len(rates.columns) - 1)]
+    for row in rates.itertuples(index=False):
+        out.append("| " + " | ".join(f"{100 * v:.0f}%" if isinstance(v, float) else _cell(v) for v in row) + " |")
+    return out + [""]
+
+
 def render_report(run, parts=None) -> str:
     """The report's Markdown text."""
     if parts is None:
@@ -151,6 +164,7 @@ def render_report(run, parts=None) -> str:
     lines += _spread_section(parts.spread, parts.components)
     lines += _cost_section(parts.costs, parts.cheapest)
     lines += _audit_section(run, parts.verdicts)
+    lines += _probe_section(parts.probes)
     ties = int(summary["ties"].sum()) if "ties" in summary else 0
     if ties:
         lines += [f"{ties} records met a near-tie between the two best next tokens (top-2 logit gap < 1e-3): "
