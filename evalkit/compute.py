@@ -10,9 +10,49 @@ which the wall seconds show).
 
 from __future__ import annotations
 
+import threading
+import time
+
 import pandas as pd
 
-__all__ = ["FLOPS_FORMULA", "forward_flops", "non_embedding_parameters", "cost_table", "cheapest_within_best"]
+
+def _rss_bytes() -> int:
+    try:
+        with open("/proc/self/statm") as f:
+            import os
+
+            return int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+    except (OSError, ValueError, IndexError):  # not Linux: fall back to the process peak so far
+        import resource
+
+        return int(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss) * 1024
+
+
+class PeakMemory:
+    """Largest resident memory of this process while the block runs, sampled every `interval` seconds."""
+
+    def __init__(self, interval: float = 0.1):
+        self.interval, self.peak, self.seconds = interval, 0, 0.0
+        self._stop = threading.Event()
+
+    def _watch(self) -> None:
+        while not self._stop.is_set():
+            self.peak = max(self.peak, _rss_bytes())
+            self._stop.wait(self.interval)
+
+    def __enter__(self) -> "PeakMemory":
+        self.peak, self._start = _rss_bytes(), time.perf_counter()
+        self._thread = threading.Thread(target=self._watch, daemon=True)
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self._stop.set()
+        self._thread.join()
+        self.peak = max(self.peak, _rss_bytes())
+        self.seconds = time.perf_counter() - self._start
+
+__all__ = ["PeakMemory", "merge_costs", "FLOPS_FORMULA", "forward_flops", "non_embedding_parameters", "cost_table", "cheapest_within_best"]
 
 FLOPS_FORMULA = "FLOPs ≈ 2 × N_non-embedding × (prompt tokens + generated tokens)  (Kaplan et al., 2020)"
 
@@ -51,6 +91,13 @@ def cost_table(summary: pd.DataFrame, models: dict[str, dict]) -> pd.DataFrame:
     ]
     df["flops_per_item"] = df["flops"] / df["n"]
     return df
+
+
+def merge_costs(summary: pd.DataFrame, costs: pd.DataFrame) -> pd.DataFrame:
+    """The summary with each condition's measured wall seconds and memory peak."""
+    if costs.empty:
+        return summary.assign(wall_seconds=float("nan"), peak_rss_bytes=float("nan"))
+    return summary.merge(costs, on="condition_id", how="left")
 
 
 def cheapest_within_best(costs: pd.DataFrame) -> pd.Series | None:

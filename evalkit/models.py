@@ -138,7 +138,11 @@ class ModelSource:
 
 @dataclass
 class LoadedModel:
-    """A model ready to generate: eval mode, tokenizer padded on the left."""
+    """A model ready to generate: eval mode, no gradients, tokenizer padded on the left.
+
+    ``load_seconds`` counts finding, reading and (first time) converting the model, not the
+    once-per-process import of transformers.
+    """
 
     model: Any
     tokenizer: Any
@@ -384,7 +388,10 @@ def load(
         try:
             model, tok = _from_pretrained(f"'{source.ref}' (hub)", source.ref, torch_dtype, local_files_only=local_only)
         except ModelError as exc:
-            raise hub_error(source.ref, str(exc)) from None
+            cause = exc.__cause__
+            if isinstance(cause, (ConnectionError, TimeoutError)) or "connect" in str(cause).lower():
+                raise hub_error(source.ref, one_line(cause)) from None
+            raise
     else:
         raise ModelError(f"model '{source.ref}' has unknown kind '{source.kind}'")
 

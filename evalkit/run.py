@@ -71,12 +71,12 @@ def open_run_folder(study: Study, tasks: list[TaskData], out: str | Path | None)
     return run_dir, store, manifest
 
 
-def summarise(records: pd.DataFrame, alpha: float = 0.05) -> pd.DataFrame:
-    """Accuracy per condition with its Wilson interval (statsmodels), in condition order."""
+def summarise(records: pd.DataFrame, costs: pd.DataFrame | None = None, alpha: float = 0.05) -> pd.DataFrame:
+    """Accuracy per condition with its Wilson interval (statsmodels), in condition order, with measured costs."""
     from .stats import accuracy_interval
 
     rows = []
-    keys = ["condition", "task", "model", "style", "shots", "draw"]
+    keys = ["condition_id", "condition", "task", "model", "style", "shots", "draw"]
     for key, g in records.groupby(keys, sort=False):
         ci = accuracy_interval(int(g["correct"].sum()), len(g), alpha=alpha, method="wilson")
         rows.append({
@@ -93,7 +93,11 @@ def summarise(records: pd.DataFrame, alpha: float = 0.05) -> pd.DataFrame:
             "seconds": float(g["seconds"].sum()),
             "ties": int((g["min_margin"].fillna(float("inf")) < 1e-3).sum()),
         })
-    return pd.DataFrame(rows)
+    from .compute import merge_costs
+
+    summary = pd.DataFrame(rows, columns=keys + ["n", "correct", "accuracy", "ci_low", "ci_high", "no_answer",
+                                                 "mean_new_tokens", "prompt_tokens", "new_tokens", "seconds", "ties"])
+    return merge_costs(summary, costs if costs is not None else pd.DataFrame())
 
 
 def export_records(run_dir: Path, records: pd.DataFrame) -> list[Path]:
@@ -117,11 +121,11 @@ def finish_run(run_dir: Path, manifest: dict, backends: dict[str, dict], counts:
     manifest["finished"] = time.strftime("%Y-%m-%dT%H:%M:%S%z")
     manifest["last_session"] = {**counts, "seconds": round(seconds, 2)}
     with RunStore(run_dir / STORE_NAME) as store:
-        records = store.records()
+        records, costs = store.records(), store.costs()
     manifest["records"] = len(records)
     write_manifest(run_dir, manifest)
     export_records(run_dir, records)
-    run = Run(run_dir, manifest, records, summarise(records), counts, seconds)
+    run = Run(run_dir, manifest, records, summarise(records, costs), counts, seconds)
     write_reports(run)
     return run
 
@@ -131,6 +135,6 @@ def load_run(run_dir: str | Path) -> Run:
     run_dir = Path(run_dir)
     manifest = read_manifest(run_dir)
     with RunStore.open_run(run_dir) as store:
-        records = store.records()
-    return Run(run_dir, manifest, records, summarise(records), manifest.get("last_session", {}),
+        records, costs = store.records(), store.costs()
+    return Run(run_dir, manifest, records, summarise(records, costs), manifest.get("last_session", {}),
                (manifest.get("last_session") or {}).get("seconds"))

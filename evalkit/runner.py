@@ -13,6 +13,7 @@ from pathlib import Path
 from typing import Callable, Iterable
 
 from .answers import score
+from .compute import PeakMemory
 from .backends.base import Backend, Completion
 from .data import Exemplar, Question, TaskData, load_task_data
 from .errors import EvalkitError
@@ -218,8 +219,10 @@ def run_conditions(store: RunStore, study: Study, planned: Iterable[PlannedCondi
                     from .calculator import calculator_generate
 
                     generate = functools.partial(calculator_generate, backend)
-                generate([p for _, p, _ in pending], max_new_tokens=settings["max_new_tokens"],
-                         stop=settings["stop"], on_result=on_result)
+                with PeakMemory() as mem:
+                    generate([p for _, p, _ in pending], max_new_tokens=settings["max_new_tokens"],
+                             stop=settings["stop"], on_result=on_result)
+                store.add_cost(pc.id, mem.seconds, mem.peak)
             close = getattr(backend, "close", None)
             if close:
                 close()

@@ -59,6 +59,11 @@ CREATE TABLE IF NOT EXISTS records (
     created REAL NOT NULL,
     PRIMARY KEY (condition_id, question_id)
 );
+CREATE TABLE IF NOT EXISTS costs (
+    condition_id TEXT PRIMARY KEY,
+    wall_seconds REAL NOT NULL,     -- summed over sessions (a resumed condition adds its new time)
+    peak_rss_bytes INTEGER NOT NULL -- largest resident memory of the process seen while it ran
+);
 CREATE TABLE IF NOT EXISTS verdicts (
     condition_id TEXT NOT NULL,
     question_id TEXT NOT NULL,
@@ -226,6 +231,22 @@ class RunStore:
 
     def count(self) -> int:
         return self.con.execute("SELECT COUNT(*) FROM records").fetchone()[0]
+
+    # costs
+    def add_cost(self, condition_id: str, wall_seconds: float, peak_rss_bytes: int) -> None:
+        """Add a session's wall time to a condition and keep the larger memory peak."""
+        with self.con:
+            self.con.execute(
+                "INSERT INTO costs VALUES (?, ?, ?) ON CONFLICT(condition_id) DO UPDATE SET "
+                "wall_seconds = wall_seconds + excluded.wall_seconds, "
+                "peak_rss_bytes = MAX(peak_rss_bytes, excluded.peak_rss_bytes)",
+                (condition_id, float(wall_seconds), int(peak_rss_bytes)),
+            )
+
+    def costs(self):
+        import pandas as pd
+
+        return pd.read_sql_query("SELECT * FROM costs", self.con)
 
     # verdicts
     def put_verdicts(self, rows: Iterable[tuple[str, str, str, dict]]) -> int:

@@ -61,6 +61,10 @@ def render_html(run, plots: dict[str, Path | None], comparisons: pd.DataFrame | 
     if "flops" not in summary:
         summary["flops"] = float("nan")
     summary["flops_text"] = summary["flops"].map(_flops_text)
+    wall = summary["wall_seconds"] if "wall_seconds" in summary else pd.Series(float("nan"), index=summary.index)
+    peak = summary["peak_rss_bytes"] if "peak_rss_bytes" in summary else pd.Series(float("nan"), index=summary.index)
+    summary["wall_text"] = ["cached" if pd.isna(w) else f"{w:.1f}" for w in wall]
+    summary["peak_text"] = ["—" if pd.isna(p) else f"{p / 2**30:.2f} GiB" for p in peak]
     by_record: dict[tuple[str, str], tuple[str, list]] = {}
     if verdicts is not None and not verdicts.empty:
         for v in verdicts.itertuples():

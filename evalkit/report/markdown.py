@@ -78,11 +78,16 @@ def _cost_section(costs: pd.DataFrame, cheapest: str | None) -> list[str]:
     if costs.empty or costs["flops"].isna().all():
         return []
     out = ["## Compute", "", f"{FLOPS_FORMULA}.", "",
-           "| condition | parameters | prompt tokens | generated tokens | est. FLOPs | seconds |",
-           "| --- | ---: | ---: | ---: | ---: | ---: |"]
+           "Wall seconds are measured per condition (model loading excluded; cached records cost none); peak memory is "
+           "the process's largest resident set while the condition ran.", "",
+           "| condition | parameters | prompt tokens | generated tokens | est. FLOPs | wall seconds | peak memory |",
+           "| --- | ---: | ---: | ---: | ---: | ---: | ---: |"]
     for r in costs.itertuples():
         params = f"{int(r.parameters):,}" if pd.notna(r.parameters) else "?"
-        out.append(f"| {_cell(r.condition)} | {params} | {r.prompt_tokens:,} | {r.new_tokens:,} | {r.flops:.2e} | {r.seconds:.1f} |")
+        wall = f"{r.wall_seconds:.1f}" if pd.notna(r.wall_seconds) else "cached"
+        peak = f"{r.peak_rss_bytes / 2**30:.2f} GiB" if pd.notna(r.peak_rss_bytes) else "—"
+        out.append(f"| {_cell(r.condition)} | {params} | {r.prompt_tokens:,} | {r.new_tokens:,} | {r.flops:.2e} | "
+                   f"{wall} | {peak} |")
     if cheapest:
         out += ["", f"Cheapest condition whose accuracy is within the 95% interval of the best: **{_cell(cheapest)}** "
                 "(a screening rule, not a test of equivalence)."]
