@@ -1,0 +1,216 @@
+"""How fast evalkit's greedy engine runs, against the usual ways of calling ``generate``.
+
+Run it alone on the machine (other processes make CPU timings meaningless)::
+
+    python benchmarks/runner_speed.py                 # SmolLM2-135M-Instruct, float32, 32 questions
+    python benchmarks/runner_speed.py --quick         # fewer questions and fewer side runs
+    python benchmarks/runner_speed.py --model-folder /path/to/tiny --quick   # smoke test
+
+On the bundled workshop task it measures, in one run and as ratios within that run:
+
+* (a) plain ``generate`` one prompt at a time, no stop strings (runs to the length limit);
+* (b) batched ``generate`` with ``stop_strings=``, left padding, as a typical loop writes it;
+* (c) ``greedy_generate``;
+
+for direct prompts (6 shots, 24 new tokens) and worked prompts (4 shots, 128 new tokens).
+It also measures the machine (memory read bandwidth, float32 matmul rate), sets the engine's
+decode rate against the compute bound (2 x parameters FLOPs per token) at a large batch and
+the bandwidth bound (weight bytes per token) at batch 1, peak memory, how the per-item cost
+grows with questions and shots, and a bfloat16 run. Output is a Markdown report on stdout.
+"""
+
+from __future__ import annotations
+
+import argparse
+import resource
+import sys
+import time
+from pathlib import Path
+
+import torch
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+
+from evalkit.backends.engine import greedy_generate  # noqa: E402
+from evalkit.backends.stops import cut_at_stop  # noqa: E402
+
+TASK = ROOT / "task_specs" / "workshop" / "workshop.toml"
+STOP = ["\nQuestion:", "\n\n\n"]  # the study default (evalkit.spec.Decoding)
+STYLES = {"direct": (6, 24), "worked": (4, 128)}  # style: (shots, max_new_tokens)
+BASELINE_BATCH = 8
+
+
+def load_model(folder: str | None, dtype: str):
+    """The model under test: a transformers folder, or the packaged SmolLM2-135M-Instruct."""
+    if folder:
+        from transformers import AutoModelForCausalLM, AutoTokenizer
+
+        model = AutoModelForCausalLM.from_pretrained(folder, dtype=getattr(torch, dtype)).eval()
+        tok = AutoTokenizer.from_pretrained(folder)
+        if tok.pad_token is None:
+            tok.pad_token = tok.eos_token
+        return model, tok, folder
+    from evalkit.models import load, resolve
+
+    loaded = load(resolve("smollm2-135m"), dtype=dtype)
+    return loaded.model, loaded.tokenizer, "smollm2-135m"
+
+
+def build_prompts(tok, style: str, shots: int, n: int) -> list[str]:
+    """Workshop prompts of one style, drawn and rendered as a study would, chat-wrapped."""
+    from evalkit.data import load_task_data
+    from evalkit.prompts import draw_exemplars, render
+    from evalkit.spec import load_task
+
+    task = load_task_data(load_task(TASK))
+    exemplars = draw_exemplars(task.exemplars, shots, seed=0, draw=0)
+    chat = bool(getattr(tok, "chat_template", None))
+    out = []
+    for q in (task.questions * (1 + n // max(1, len(task.questions))))[:n]:
+        text = render(task, style, exemplars, q.question, chat=chat)
+        if chat:
+            text = tok.apply_chat_template([{"role": "user", "content": text}],
+                                           tokenize=False, add_generation_prompt=True)
+        out.append(text)
+    return out
+
+
+def _cut(text: str) -> str:
+    i = cut_at_stop(text, STOP)
+    return text if i is None else text[:i]
+
+
+def _clock(fn):
+    t0 = time.perf_counter()
+    out = fn()
+    return out, time.perf_counter() - t0
+
+
+def plain_generate(model, tok, prompts, max_new):
+    """(a): one prompt at a time, greedy, no stop strings; texts cut afterwards."""
+    texts, tokens = [], 0
+    for p in prompts:
+        ids = tok(p, return_tensors="pt", add_special_tokens=False)
+        with torch.inference_mode():
+            seq = model.generate(**ids, max_new_tokens=max_new, do_sample=False,
+                                 pad_token_id=tok.pad_token_id)
+        new = seq[0, ids["input_ids"].shape[1]:]
+        tokens += len(new)
+        texts.append(_cut(tok.decode(new, skip_special_tokens=True)))
+    return texts, tokens
+
+
+def batched_generate(model, tok, prompts, max_new, batch=BASELINE_BATCH):
+    """(b): batches of prompts, left padding, ``stop_strings=`` as most loops pass it."""
+    tok.padding_side = "left"
+    texts, tokens = [], 0
+    for a in range(0, len(prompts), batch):
+        enc = tok(prompts[a:a + batch], return_tensors="pt", padding=True, add_special_tokens=False)
+        with torch.inference_mode():
+            seq = model.generate(**enc, max_new_tokens=max_new, do_sample=False, stop_strings=STOP,
+                                 tokenizer=tok, pad_token_id=tok.pad_token_id)
+        for row in seq[:, enc["input_ids"].shape[1]:]:
+            ids = [t for t in row.tolist() if t != tok.pad_token_id]
+            tokens += len(ids)
+            texts.append(_cut(tok.decode(ids, skip_special_tokens=True)))
+    return texts, tokens
+
+
+def machine_rates(quick: bool) -> tuple[float, float]:
+    """Memory read bandwidth (GB/s, summing a 512 MB tensor) and float32 matmul GFLOP/s."""
+    x = torch.ones(128 * 1024 * 1024 // (4 if quick else 1), dtype=torch.float32)
+    x.sum()
+    reps = 3 if quick else 8
+    _, t = _clock(lambda: [x.sum() for _ in range(reps)])
+    bandwidth = reps * x.nbytes / t / 1e9
+    n = 1024 if quick else 2048
+    a, b = torch.randn(n, n), torch.randn(n, n)
+    a @ b
+    _, t = _clock(lambda: [a @ b for _ in range(reps)])
+    return bandwidth, reps * 2 * n ** 3 / t / 1e9
+
+
+def decode_rate(model, tok, prompts, batch: int, steps: int) -> float:
+    """Engine decode tokens/s at ``batch`` rows: the run to ``steps`` tokens minus the run to 1."""
+    kw = dict(batch_size=batch, reuse_prefix=True)
+    short, t1 = _clock(lambda: greedy_generate(model, tok, prompts, max_new_tokens=1, **kw))
+    long, t2 = _clock(lambda: greedy_generate(model, tok, prompts, max_new_tokens=steps, **kw))
+    extra = sum(g.new_tokens for g in long) - sum(g.new_tokens for g in short)
+    return extra / max(1e-9, t2 - t1)
+
+
+def main(argv=None) -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--questions", type=int, default=32, help="questions per style (default 32)")
+    ap.add_argument("--quick", action="store_true", help="fewer questions and side measurements")
+    ap.add_argument("--model-folder", help="a transformers model folder instead of SmolLM2 (smoke tests)")
+    ap.add_argument("--threads", type=int, help="torch threads (default: as loaded)")
+    args = ap.parse_args(argv)
+    n = min(args.questions, 8) if args.quick else args.questions
+    n_plain = min(n, 4 if args.quick else 8)  # (a) is slow: timed on a subset, per item
+
+    model, tok, name = load_model(args.model_folder, "float32")
+    if args.threads:
+        torch.set_num_threads(args.threads)
+    n_params = model.num_parameters()
+    weight_bytes = sum(p.numel() * p.element_size() for p in model.parameters())
+    lines = [f"# Runner speed: {name}, float32, {torch.get_num_threads()} threads, {n} questions per style", ""]
+    bandwidth, gflops = machine_rates(args.quick)
+    lines += [f"Machine: memory read {bandwidth:.1f} GB/s, float32 matmul {gflops:.1f} GFLOP/s.", ""]
+
+    lines += ["| style | method | items | seconds | items/s | useful tokens/s | engine speed-up | same text as engine |",
+              "| --- | --- | ---: | ---: | ---: | ---: | ---: | ---: |"]
+    f32_texts = {}
+    for style, (shots, max_new) in STYLES.items():
+        prompts = build_prompts(tok, style, shots, n)
+        eng, t_eng = _clock(lambda: greedy_generate(model, tok, prompts, max_new_tokens=max_new, stop=STOP))
+        f32_texts[style] = [g.text for g in eng]
+        useful = sum(g.new_tokens for g in eng)
+        (pa, _), t_a = _clock(lambda: plain_generate(model, tok, prompts[:n_plain], max_new))
+        (pb, _), t_b = _clock(lambda: batched_generate(model, tok, prompts, max_new))
+        rate_e = n / t_eng
+        per = [("plain generate, one at a time", n_plain, t_a, pa),
+               (f"batched generate + stop_strings (batch {BASELINE_BATCH})", n, t_b, pb),
+               ("evalkit engine", n, t_eng, f32_texts[style])]
+        for label, items, secs, texts in per:
+            same = sum(a == b for a, b in zip(texts, f32_texts[style]))
+            tok_rate = useful * items / n / secs
+            lines.append(f"| {style} | {label} | {items} | {secs:.2f} | {items / secs:.2f} | {tok_rate:.1f} | "
+                         f"{rate_e / (items / secs):.1f}x | {same}/{len(texts)} |")
+    lines.append("")
+
+    probe = build_prompts(tok, "worked", 4, max(8, n))
+    big = min(32, len(probe))
+    steps = 16 if args.quick else 48
+    r_big = decode_rate(model, tok, probe[:big], big, steps)
+    r_one = decode_rate(model, tok, probe[:1], 1, steps)
+    compute_share = r_big * 2 * n_params / (gflops * 1e9)
+    bw_bound = bandwidth * 1e9 / weight_bytes
+    lines += [f"Decode at batch {big}: {r_big:.1f} tokens/s = {r_big * 2 * n_params / 1e9:.1f} GFLOP/s, "
+              f"{100 * compute_share:.1f}% of the matmul rate (2 x {n_params / 1e6:.3g}M parameters per token).",
+              f"Decode at batch 1: {r_one:.1f} tokens/s; bandwidth bound {bw_bound:.1f} tokens/s "
+              f"({weight_bytes / 1e6:.3g} MB of weights per token): {100 * r_one / bw_bound:.1f}%.", ""]
+
+    lines += ["| direct shots | questions | seconds per item |", "| ---: | ---: | ---: |"]
+    for shots in ((2, 8) if args.quick else (2, 4, 8)):
+        for q in sorted({max(1, n // 4), n}):
+            prompts = build_prompts(tok, "direct", shots, q)
+            _, t = _clock(lambda: greedy_generate(model, tok, prompts, max_new_tokens=24, stop=STOP))
+            lines.append(f"| {shots} | {q} | {t / q:.3f} |")
+    lines.append("")
+
+    bf = model.to(torch.bfloat16)
+    lines += ["| style | bfloat16 items/s | completions changed vs float32 |", "| --- | ---: | ---: |"]
+    for style, (shots, max_new) in STYLES.items():
+        prompts = build_prompts(tok, style, shots, n)
+        got, t = _clock(lambda: greedy_generate(bf, tok, prompts, max_new_tokens=max_new, stop=STOP))
+        changed = sum(g.text != f for g, f in zip(got, f32_texts[style]))
+        lines.append(f"| {style} | {n / t:.2f} | {changed}/{n} |")
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    lines += ["", f"Peak resident memory: {peak:.0f} MB.", ""]
+    print("\n".join(lines))
+
+
+if __name__ == "__main__":
+    main()
