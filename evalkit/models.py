@@ -11,7 +11,8 @@ A model reference is one of:
 GGUF weights are dequantized to float32 by transformers on load, which is slow (SmolLM2-135M
 about 20-50 s, Gemma-3-270M one to three minutes on two busy cores); the first load saves the
 result as safetensors under ``converted/<sha256[:16]>/`` in the cache, and later loads read
-that instead (about 0.6 s for SmolLM2, 2-3 s for Gemma-3, most of it its 262k-token tokenizer).
+that instead (about 1 s for SmolLM2; 3-4 s for Gemma-3, most of it the tokenizers library
+parsing its 262k-token, 515k-merge tokenizer.json).
 """
 
 from __future__ import annotations
@@ -172,7 +173,11 @@ def packaged_model(name: str) -> PackagedModel:
 
 
 def resolve(ref: str, cache_dir: str | Path | None = None) -> ModelSource:
-    """Turn a model reference (packaged name, .gguf path, folder, hub id) into a ModelSource."""
+    """Turn a model reference (packaged name, .gguf path, folder, hub id) into a ModelSource.
+
+    Packaged names win over a local path of the same name; a hub id is checked for
+    reachability (or a local hub-cache copy) here, so a study fails before it starts.
+    """
     ref = str(ref).strip()
     if ref in _BY_NAME:
         entry = _BY_NAME[ref]
