@@ -150,6 +150,7 @@ def rerun(run_dir: str | Path, out: str | Path | None = None, progress: bool = T
     value_cols = [c for c in cols if c not in ("condition", "question_id")]
     differs = merged["_merge"] != "both"
     for c in value_cols:
-        differs |= merged[f"{c}_a"].astype(str) != merged[f"{c}_b"].astype(str)
+        a, b = merged[f"{c}_a"], merged[f"{c}_b"]
+        differs |= ~((a.astype(str) == b.astype(str)) | (a.isna() & b.isna()))
     differing = merged[differs]
     return Rerun(Path(out), bool(not differs.any()), len(merged), differing, changed)
