@@ -121,10 +121,16 @@ class PairedComparison:
 
     @property
     def interval(self) -> tuple[float, float]:
-        """The interval a verdict rests on: clustered when groups were given, else paired t."""
+        """The interval a verdict rests on: clustered when groups were given, else paired t.
+
+        A difference of two accuracies lies in [-1, 1]; an interval from few questions or few
+        groups can overshoot that, so it is clipped to what is possible.
+        """
         if self.cluster_ci_low is not None:
-            return self.cluster_ci_low, self.cluster_ci_high
-        return self.ci_low, self.ci_high
+            low, high = self.cluster_ci_low, self.cluster_ci_high
+        else:
+            low, high = self.ci_low, self.ci_high
+        return max(low, -1.0), min(high, 1.0)
 
     @property
     def p(self) -> float:

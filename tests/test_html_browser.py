@@ -281,7 +281,9 @@ def test_wrong_step_is_marked_in_the_open_chain(page):
     bad = css(record, "pre.completion mark.bad")
     good = css(record, "pre.completion mark.good")
     assert [m.text for m in bad] == ["5 * 3 = 16"] and bad[0].is_displayed()
-    assert bad[0].get_attribute("title") == "5 * 3 = 15"  # 5 * 3 is 15
+    assert bad[0].get_attribute("title") == "should be 15"  # 5 * 3 is 15
+    fix = css(record, "pre.completion span.fix")
+    assert [f.text for f in fix] == ["(is 15)"] and fix[0].is_displayed()  # the correction is visible, not hover-only
     assert len(good) == 2  # 2 * 7 = 14 and 16 + 14 = 30 hold as written
     colours = {m.value_of_css_property("background-color") for m in (bad[0], good[0])}
     assert len(colours) == 2, "wrong and sound steps look the same"

@@ -27,9 +27,12 @@ def marked_completion(text: str, steps: list[dict]) -> Markup:
         if start < pos or end > len(text):
             continue
         out.append(escape(text[pos:start]))
-        cls = "good" if s.get("holds") else "bad"
-        title = f"{s.get('expression')} = {s.get('value')}" if not s.get("holds") else ""
-        out.append(Markup('<mark class="{}" title="{}">{}</mark>').format(cls, title, text[start:end]))
+        if s.get("holds"):
+            out.append(Markup('<mark class="good">{}</mark>').format(text[start:end]))
+        else:
+            true = s.get("value") if s.get("value") is not None else "undefined"
+            out.append(Markup('<mark class="bad" title="should be {}">{}</mark><span class="fix">(is {})</span>')
+                       .format(true, text[start:end], true))
         pos = end
     out.append(escape(text[pos:]))
     return Markup("").join(out)
@@ -72,9 +75,10 @@ def render_html(run, plots: dict[str, Path | None], comparisons: pd.DataFrame | 
     records = []
     for r in run.records.to_dict("records"):
         verdict, steps = by_record.get((r["condition_id"], r["question_id"]), ("", []))
-        margin = r.get("min_margin")
+        margin, extracted = r.get("min_margin"), r.get("extracted")
         records.append({
             **r, "verdict": verdict, "completion_html": marked_completion(r["completion"], steps),
+            "extracted": None if extracted is None or (isinstance(extracted, float) and math.isnan(extracted)) else extracted,
             "interventions": (r.get("extra") or {}).get("calculator", []),
             "min_margin": None if margin is None or (isinstance(margin, float) and math.isnan(margin)) else margin,
         })

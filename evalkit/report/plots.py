@@ -47,6 +47,19 @@ def _errorbars(ax, sub, x, **kw):
     return ax.errorbar(x, y, yerr=err, capsize=3, **kw)
 
 
+def _axes(ax, xlabel: str) -> None:
+    from matplotlib.ticker import NullFormatter
+
+    ax.set_xscale("log")
+    ax.xaxis.set_minor_formatter(NullFormatter())  # minor labels on a short log axis overlap
+    ax.margins(x=0.12)
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel("accuracy, % (95% interval)")
+    ax.set_ylim(-3, 103)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=7, loc="center left", bbox_to_anchor=(1.01, 0.5), frameon=False)
+
+
 def accuracy_vs_size(pooled: pd.DataFrame, stem: Path) -> tuple[Path, Path] | None:
     """Accuracy (95% Wilson interval) against parameter count, log scale, one line per style and shots."""
     data = pooled.dropna(subset=["parameters"])
@@ -58,14 +71,9 @@ def accuracy_vs_size(pooled: pd.DataFrame, stem: Path) -> tuple[Path, Path] | No
         sub = sub.sort_values("parameters")
         _errorbars(ax, sub, sub["parameters"], marker="o", label=f"{style}, {shots}-shot")
     for model, sub in data.groupby("model", sort=False):
-        ax.annotate(model, (sub["parameters"].iloc[0], 0), xytext=(0, 4), textcoords="offset points",
+        ax.annotate(model, (sub["parameters"].iloc[0], -3), xytext=(0, 4), textcoords="offset points",
                     ha="center", fontsize=7, color="0.4")
-    ax.set_xscale("log")
-    ax.set_xlabel("parameters (log scale)")
-    ax.set_ylabel("accuracy, % (95% interval)")
-    ax.set_ylim(0, 100)
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=7, loc="upper left")
+    _axes(ax, "parameters (log scale)")
     ax.set_title("Accuracy against model size")
     return _save(fig, stem)
 
@@ -84,11 +92,6 @@ def accuracy_vs_compute(pooled: pd.DataFrame, stem: Path) -> tuple[Path, Path] |
         for r in sub.itertuples():
             ax.annotate(f"{r.shots}", (r.flops_per_item, 100 * r.accuracy), xytext=(4, 2),
                         textcoords="offset points", fontsize=7, color="0.4")
-    ax.set_xscale("log")
-    ax.set_xlabel("estimated inference FLOPs per question (log scale; labels = shots)")
-    ax.set_ylabel("accuracy, % (95% interval)")
-    ax.set_ylim(0, 100)
-    ax.grid(alpha=0.3)
-    ax.legend(fontsize=7, loc="upper left")
+    _axes(ax, "estimated inference FLOPs per question (log scale; labels = shots)")
     ax.set_title("Accuracy against compute")
     return _save(fig, stem)
