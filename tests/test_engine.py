@@ -16,7 +16,7 @@ from transformers import AutoModelForCausalLM, AutoTokenizer
 from evalkit.backends import engine as engine_mod
 from evalkit.backends.engine import (TIE_MARGIN, Generation, auto_batch_size, common_prefix_length,
                                      greedy_generate, kv_bytes_per_token)
-from evalkit.backends.kvslab import Slab
+from evalkit.backends.kvslab import ATTENTION_NAME, Slab
 from evalkit.backends.reference import reference_generate, reference_trace
 from evalkit.errors import BackendError
 from tests.tiny import build_tiny_model
@@ -201,12 +201,14 @@ def test_one_new_token_and_single_prompt(llama):
     assert _compare(one, reference_generate(model, tok, PROMPTS[:1], max_new_tokens=MAX_NEW)) == 0
 
 
-def test_eager_attention_takes_additive_masks(tmp_path):
+def test_eager_model_matches_and_keeps_its_attention(tmp_path):
     folder = build_tiny_model(tmp_path / "m", arch="llama", seed=1)
     model, tok = _load(folder, attn_implementation="eager")
     ref = reference_generate(model, tok, PROMPTS[:8], max_new_tokens=12)
     got = greedy_generate(model, tok, PROMPTS[:8], max_new_tokens=12, batch_size=3)
     assert _compare(got, ref) <= 1
+    # The engine's own attention is selected only while it runs.
+    assert model.config._attn_implementation == "eager"
 
 
 @pytest.fixture(scope="module")
@@ -215,8 +217,8 @@ def gemma_ref(gemma):
     return reference_generate(model, tok, PROMPTS, max_new_tokens=16)
 
 
-@pytest.mark.parametrize("batch_size", [3, 8])
-def test_gemma3_sliding_window_equals_reference(gemma, gemma_ref, batch_size):
+@pytest.mark.parametrize("batch_size,reuse_prefix", [(3, True), (8, False)])
+def test_gemma3_sliding_window_equals_reference(gemma, gemma_ref, batch_size, reuse_prefix):
     model, tok = gemma
     window = model.config.sliding_window
     kinds = set(model.config.layer_types)
@@ -224,7 +226,8 @@ def test_gemma3_sliding_window_equals_reference(gemma, gemma_ref, batch_size):
     # Prompts far longer than the window: a window counted in columns rather than real
     # tokens (padding, gaps) would change the text.
     assert min(len(tok(p)["input_ids"]) for p in PROMPTS) > 4 * window
-    got = greedy_generate(model, tok, PROMPTS, max_new_tokens=16, batch_size=batch_size)
+    got = greedy_generate(model, tok, PROMPTS, max_new_tokens=16, batch_size=batch_size,
+                          reuse_prefix=reuse_prefix)
     assert _compare(got, gemma_ref) <= 1
 
 
@@ -259,8 +262,13 @@ def test_key_value_bytes_match_the_cache(llama):
     from evalkit.backends.kvslab import AttentionPlan
 
     ids = tok(PROMPTS[0], add_special_tokens=False)["input_ids"]
-    slab = Slab.for_prefix(model, AttentionPlan(model), ids, chunk=16)
-    assert slab.nbytes() == kv_bytes_per_token(model) * slab.capacity
+    before, model.config._attn_implementation = model.config._attn_implementation, ATTENTION_NAME
+    try:
+        prefix = Slab.for_prefix(model, AttentionPlan(model), ids, chunk=16)
+    finally:
+        model.config._attn_implementation = before
+    held = sum(k.nbytes + v.nbytes for k, v in prefix)
+    assert held == kv_bytes_per_token(model) * len(ids)
     assert auto_batch_size(model, 200, n_prompts=3) == 3
     assert 1 <= auto_batch_size(model, 10**9, n_prompts=100) <= 32
 

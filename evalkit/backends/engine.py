@@ -5,9 +5,10 @@ How a call runs:
 1. Every prompt is tokenised (no special tokens added). The longest common *token* prefix of
    all prompts is run through the model once (``logits_to_keep=1``: no vocabulary projection
    for positions whose logits nobody reads).
-2. Questions are decoded in a batch of rows that continue from copies of that prefix cache
-   (see :mod:`evalkit.backends.kvslab` for the layout). Each step feeds one token per row and
-   projects only the last position to the vocabulary.
+2. Questions are decoded in a batch of rows that all continue from that prefix cache
+   (see :mod:`evalkit.backends.kvslab` for the layout; the prefix is held once, not copied
+   per row). Each step feeds one token per row and projects only the last position to the
+   vocabulary.
 3. A row ends at its own stop string, end-of-sequence token or length limit. When a quarter
    of the rows have ended, waiting questions are prefilled against the prefix and merged into
    the running batch in the freed rows; once nobody waits, ended rows are dropped likewise.
@@ -29,7 +30,7 @@ from typing import Callable, Sequence
 import torch
 
 from ..errors import BackendError
-from .kvslab import AttentionPlan, Slab, combine
+from .kvslab import ATTENTION_NAME, AttentionPlan, Slab, combine
 from .stops import StopWatcher, settle
 
 __all__ = ["Generation", "greedy_generate", "common_prefix_length", "eos_ids", "auto_batch_size",
@@ -106,6 +107,7 @@ def auto_batch_size(model, row_tokens: int, n_prompts: int) -> int:
     """Rows per batch from the key/value memory one row needs and the memory available."""
     vocab = model.config.get_text_config(decoder=True).vocab_size
     # Two slabs coexist while rows are merged; logits come out in float32 plus a copy.
+    # (The shared prefix is held once, outside the rows; row_tokens may leave it out.)
     per_row = 2 * row_tokens * kv_bytes_per_token(model) + 8 * vocab
     fit = int(MEMORY_FRACTION * _mem_available()) // max(1, per_row)
     return max(1, min(MAX_AUTO_BATCH, fit, n_prompts))
@@ -158,12 +160,12 @@ class _Run:
                                         min_margin=margin, finish=how,
                                         seconds=r.seconds + self.shared_seconds))
 
-    def prefill(self, prefix: Slab, items: list[int]) -> tuple[Slab, list[_Row]]:
-        """New rows for ``items``: their suffixes right-aligned after a copy of the prefix."""
+    def prefill(self, plan: AttentionPlan, prefix_kv, items: list[int]) -> tuple[Slab, list[_Row]]:
+        """New rows for ``items``: their suffixes, right-aligned, continuing the shared prefix."""
         t0 = time.perf_counter()
         sufs = [self.enc[i][self.P:] for i in items]
         k, S = len(sufs), max(len(s) for s in sufs)
-        slab = prefix.replicate(k, S + self.max_new)
+        slab = Slab(plan, k, S + self.max_new, prefix_kv, self.device)
         ids = torch.full((k, S), self.pad, dtype=torch.long)
         pos = torch.zeros((k, S), dtype=torch.long)
         real = torch.zeros((k, S), dtype=torch.bool)
@@ -229,17 +231,19 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
     run = _Run(model, tokenizer, enc, P, max_new_tokens, stop, eos, on_done)
     plan = AttentionPlan(model)
     max_suffix = max(len(e) for e in enc) - P
-    cap = batch_size or auto_batch_size(model, P + max_suffix + max_new_tokens, len(prompts))
+    cap = batch_size or auto_batch_size(model, max_suffix + max_new_tokens, len(prompts))
     refill_at = max(1, cap // 4)
     # Longest suffixes first: neighbours in a prefill then need little padding.
     waiting = deque(sorted(range(len(prompts)), key=lambda i: (-len(enc[i]), i)))
 
-    was_training = model.training
+    was_training, attn = model.training, model.config._attn_implementation
     model.eval()
+    # Selected only while this call runs: the model object stays as the caller loaded it.
+    model.config._attn_implementation = ATTENTION_NAME
     try:
         with torch.inference_mode():
             t0 = time.perf_counter()
-            prefix = Slab.for_prefix(model, plan, enc[0][:P], PREFILL_TOKENS)
+            prefix_kv = Slab.for_prefix(model, plan, enc[0][:P], PREFILL_TOKENS)
             run.shared_seconds = (time.perf_counter() - t0) / len(prompts)
             slab, rows = None, []
             while waiting or any(not r.done for r in rows):
@@ -247,7 +251,7 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
                 ended = len(rows) - len(live)
                 if waiting and (not live or cap - len(live) >= refill_at):
                     take = [waiting.popleft() for _ in range(min(cap - len(live), len(waiting)))]
-                    new, new_rows = run.prefill(prefix, take)
+                    new, new_rows = run.prefill(plan, prefix_kv, take)
                     keep_new = [j for j, r in enumerate(new_rows) if not r.done]
                     parts = ([(slab, live)] if live else []) + [(new, keep_new)]
                     rows = [rows[j] for j in live] + [new_rows[j] for j in keep_new]
@@ -260,5 +264,6 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
     except RuntimeError as e:  # torch errors (shapes, memory) become one backend error
         raise BackendError(f"greedy decoding failed: {str(e).splitlines()[0]}") from None
     finally:
+        model.config._attn_implementation = attn
         model.train(was_training)
     return results

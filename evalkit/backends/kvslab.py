@@ -1,15 +1,18 @@
-"""A preallocated key/value cache laid out for shared-prefix continuous batching.
+"""A preallocated key/value cache for rows that continue one shared prefix.
 
-Every row of a :class:`Slab` holds its columns in this order::
+The prefix's keys and values are held once per layer, [kv_heads, P, head_dim]
+(``prefix_kv``), and never copied into rows; :mod:`evalkit.backends.split_attention` lets
+every row attend to them. Each row's own tokens (prompt suffix, then generated text) live in
+per-row buffers::
 
-    [ shared prefix : P ][ gap (masked) ][ the row's own tokens: prompt suffix, then generated ]
+    own columns of a row:   [ gap (masked) ][ suffix ][ generated ]
 
 Rows are right-aligned: each row's newest token sits in the last used column, so one decode
 step appends one column to every row. ``kv_pos[b, c]`` is the absolute position of the token
-in column c of row b, or -1 for a gap or padding column. Attention masks are built from these
-positions, not from column numbers, so a row attends exactly as it would alone (including
-sliding-window layers, whose window counts real tokens). Gap columns hold zeros: masked,
-but finite, so they cannot leak NaN through a zero attention weight.
+in own column c of row b, or -1 for a gap or padding column; prefix positions are 0..P-1.
+Attention masks are built from positions, not column numbers, so a row attends exactly as
+it would alone (including sliding-window layers, whose window counts real tokens). Gap
+columns hold zeros: masked, but finite, so they cannot leak NaN through a zero weight.
 
 Buffers are allocated with spare capacity and written in place, so a decode step copies only
 the new column (a growing ``torch.cat`` cache copies everything, every step). Rows leave and
@@ -24,8 +27,9 @@ import torch
 from transformers.cache_utils import Cache, DynamicLayer
 
 from ..errors import BackendError
+from .split_attention import ATTENTION_NAME, active_slab
 
-__all__ = ["Slab", "AttentionPlan", "combine"]
+__all__ = ["Slab", "AttentionPlan", "combine", "ATTENTION_NAME"]
 
 
 class AttentionPlan:
@@ -33,12 +37,6 @@ class AttentionPlan:
 
     def __init__(self, model):
         cfg = model.config.get_text_config(decoder=True)
-        impl = getattr(model.config, "_attn_implementation", None) or "eager"
-        if impl not in ("sdpa", "eager"):
-            raise BackendError(
-                f"attention implementation '{impl}' is not supported by evalkit's engine; "
-                "load the model with attn_implementation='sdpa' or 'eager'")
-        self.additive = impl == "eager"  # eager adds the mask to the scores; sdpa takes booleans
         window = getattr(cfg, "sliding_window", None)
         types = getattr(cfg, "layer_types", None)
         if types is None:
@@ -54,7 +52,6 @@ class AttentionPlan:
                 raise BackendError(
                     f"layer type '{t}' of model type '{cfg.model_type}' is not supported by evalkit's "
                     "engine (it handles full and sliding-window attention)")
-        self.dtype = next(model.parameters()).dtype
 
 
 class _SlabLayer(DynamicLayer):
@@ -90,10 +87,11 @@ class _SlabLayer(DynamicLayer):
 
 
 class Slab(Cache):
-    """Cache of a batch of rows sharing the first ``prefix`` columns (see module notes)."""
+    """Cache of a batch of rows continuing one shared prefix (see module notes)."""
 
-    def __init__(self, plan: AttentionPlan, rows: int, capacity: int, prefix: int, device):
-        self.plan, self.capacity, self.prefix = plan, capacity, prefix
+    def __init__(self, plan: AttentionPlan, rows: int, capacity: int, prefix_kv, device):
+        self.plan, self.capacity, self.prefix_kv = plan, capacity, prefix_kv
+        self.prefix = prefix_kv[0][0].shape[1] if prefix_kv else 0
         super().__init__(layers=[])
         self.layer_class_to_replicate = lambda: _SlabLayer(self)  # layers appear on first update
         self.kv_pos = torch.full((rows, capacity), -1, dtype=torch.long, device=device)
@@ -122,35 +120,44 @@ class Slab(Cache):
         self.kv_pos, self.capacity = pos, cap
 
     def _masks(self, qpos: torch.Tensor, real: torch.Tensor | None):
-        """Attention masks for queries at positions ``qpos`` [B, T] in the next T columns."""
+        """Masks [B, 1, T, P + own columns] for queries at ``qpos`` [B, T] in the next T columns."""
         B, T = qpos.shape
-        kvp = self.kv_pos[:, : self.n + T][:, None, :]            # [B, 1, L]
-        q = qpos[:, :, None]                                       # [B, T, 1]
-        base = (kvp >= 0) & (kvp <= q)                             # [B, T, L]
+        P, dev = self.prefix, qpos.device
+        kvp = self.kv_pos[:, : self.n + T][:, None, :]                       # [B, 1, L]
+        q = qpos[:, :, None]                                                 # [B, T, 1]
+        own = (kvp >= 0) & (kvp <= q)                                        # [B, T, L]
+        ppos = torch.arange(P, device=dev)[None, None, :]                    # [1, 1, P]
+        pad_rows = real is not None and not bool(real.all())
         out = {}
         for kind, window in self.plan.kinds.items():
-            m = base if window is None else base & (q - kvp < window)
-            if real is not None and not bool(real.all()):
-                # A padding query sees only its own (finite) column: never an empty row.
-                m = m.clone()
-                cols = torch.arange(self.n, self.n + T, device=m.device)
-                m[:, torch.arange(T, device=m.device), cols] |= ~real
-            m = m[:, None]                                         # [B, 1, T, L]
-            if self.plan.additive:
-                zero = torch.zeros((), dtype=self.plan.dtype, device=m.device)
-                m = torch.where(m, zero, torch.finfo(self.plan.dtype).min)
-            out[kind] = m
+            if window is None:
+                m = torch.cat([own.new_ones((B, T, P)), own], dim=-1)
+            else:
+                m = torch.cat([ppos > q - window, own & (q - kvp < window)], dim=-1)
+            if pad_rows:
+                # A padding query also sees its own (finite) column: never an empty row.
+                cols = torch.arange(P + self.n, P + self.n + T, device=dev)
+                m[:, torch.arange(T, device=dev), cols] |= ~real
+            out[kind] = m[:, None]                                           # [B, 1, T, P+L]
         return next(iter(out.values())) if len(out) == 1 else out
 
     def extend(self, model, ids: torch.Tensor, pos: torch.Tensor,
                real: torch.Tensor | None = None) -> torch.Tensor:
-        """Run ``ids`` [B, T] at positions ``pos`` through the model; return last logits [B, V]."""
+        """Run ``ids`` [B, T] at positions ``pos`` through the model; return last logits [B, V].
+
+        The model must have ``config._attn_implementation == ATTENTION_NAME`` (the engine
+        selects it for the duration of a call).
+        """
         T = ids.shape[1]
         self.ensure(T)
         seen = pos if real is None else torch.where(real, pos, -1)
         self.kv_pos[:, self.n:self.n + T] = seen
-        out = model(input_ids=ids, attention_mask=self._masks(pos, real),
-                    position_ids=pos.clamp(min=0), cache=self, use_cache=True, logits_to_keep=1)
+        token = active_slab.set(self)
+        try:
+            out = model(input_ids=ids, attention_mask=self._masks(pos, real),
+                        position_ids=pos.clamp(min=0), cache=self, use_cache=True, logits_to_keep=1)
+        finally:
+            active_slab.reset(token)
         self.n += T
         if any(layer.n != self.n for layer in self.layers):
             raise BackendError("model type not supported by evalkit's engine: its layers do not "
@@ -158,56 +165,37 @@ class Slab(Cache):
         return out.logits[:, -1, :]
 
     @classmethod
-    def for_prefix(cls, model, plan: AttentionPlan, ids: Sequence[int], chunk: int) -> "Slab":
-        """The shared prefix as a one-row slab, computed in chunks of ``chunk`` tokens."""
+    def for_prefix(cls, model, plan: AttentionPlan, ids: Sequence[int], chunk: int):
+        """Keys and values of the shared prefix, per layer [kv_heads, P, head_dim]; None if empty."""
+        if not ids:
+            return None
         device = model.device
-        slab = cls(plan, 1, max(1, len(ids)), len(ids), device)
+        slab = cls(plan, 1, len(ids), None, device)
         t = torch.tensor([list(ids)], dtype=torch.long, device=device)
         p = torch.arange(len(ids), device=device)[None]
         for a in range(0, len(ids), chunk):
             slab.extend(model, t[:, a:a + chunk], p[:, a:a + chunk])
-        return slab
-
-    def replicate(self, rows: int, reserve: int) -> "Slab":
-        """``rows`` copies of this one-row prefix slab, with room for ``reserve`` more columns."""
-        new = Slab(self.plan, rows, self.n + reserve, self.prefix, self.kv_pos.device)
-        new.kv_pos[:, :self.n] = self.kv_pos[0, :self.n]
-        for layer in self.layers:
-            k, v = layer.buf_k, layer.buf_v
-            nk = k.new_zeros((rows, k.shape[1], new.capacity, k.shape[3]))
-            nv = v.new_zeros((rows, v.shape[1], new.capacity, v.shape[3]))
-            nk[:, :, :self.n] = k[:, :, :self.n]
-            nv[:, :, :self.n] = v[:, :, :self.n]
-            lay = _SlabLayer(new)
-            lay.set_buffers(nk, nv, self.n)
-            new.layers.append(lay)
-        new.n = self.n
-        return new
+        return [(layer.buf_k[0, :, :slab.n], layer.buf_v[0, :, :slab.n]) for layer in slab.layers]
 
     def nbytes(self) -> int:
-        """Bytes held by this slab's key/value buffers."""
+        """Bytes held by this slab's own-token key/value buffers (the shared prefix excluded)."""
         return sum(l.buf_k.nbytes + l.buf_v.nbytes for l in self.layers if l.buf_k is not None)
 
 
 def combine(parts: Sequence[tuple[Slab, Sequence[int]]], reserve: int) -> Slab:
     """A fresh slab holding the listed rows of each part, in order, right-aligned again.
 
-    All parts share the same prefix. Gaps shrink to what the longest kept row needs, so
+    All parts continue the same prefix. Gaps shrink to what the longest kept row needs, so
     columns freed by rows that left are reclaimed here.
     """
     parts = [(s, list(keep)) for s, keep in parts if keep]
     first = parts[0][0]
-    P = first.prefix
-    width = max(s.tail[i] for s, keep in parts for i in keep)
-    n = P + width
+    n = max(s.tail[i] for s, keep in parts for i in keep)
     rows = sum(len(keep) for _, keep in parts)
-    new = Slab(first.plan, rows, n + reserve, P, first.kv_pos.device)
-    new.kv_pos[:, :P] = first.kv_pos[0, :P]
-    n_layers = len(first.layers)
+    new = Slab(first.plan, rows, n + reserve, first.prefix_kv, first.kv_pos.device)
     bufs = []
-    for li in range(n_layers):
-        k = first.layers[li].buf_k
-        v = first.layers[li].buf_v
+    for layer in first.layers:
+        k, v = layer.buf_k, layer.buf_v
         bufs.append((k.new_empty((rows, k.shape[1], new.capacity, k.shape[3])),
                      v.new_empty((rows, v.shape[1], new.capacity, v.shape[3]))))
     r0 = 0
@@ -217,16 +205,15 @@ def combine(parts: Sequence[tuple[Slab, Sequence[int]]], reserve: int) -> Slab:
         sel = slice(keep[0], keep[-1] + 1) if keep == list(range(keep[0], keep[-1] + 1)) \
             else torch.tensor(keep, device=s.kv_pos.device)
         new.kv_pos[r0:r1, n - w:n] = s.kv_pos[sel, s.n - w:s.n]
-        for li in range(n_layers):
-            for src, dst in ((s.layers[li].buf_k, bufs[li][0]), (s.layers[li].buf_v, bufs[li][1])):
-                dst[r0:r1, :, :P] = src[sel, :, :P]
-                dst[r0:r1, :, P:n - w] = 0
+        for li, (dk, dv) in enumerate(bufs):
+            for src, dst in ((s.layers[li].buf_k, dk), (s.layers[li].buf_v, dv)):
+                dst[r0:r1, :, :n - w] = 0
                 dst[r0:r1, :, n - w:n] = src[sel, :, s.n - w:s.n]
         new.tail[r0:r1] = [s.tail[i] for i in keep]
         r0 = r1
-    for li in range(n_layers):
+    for dk, dv in bufs:
         lay = _SlabLayer(new)
-        lay.set_buffers(bufs[li][0], bufs[li][1], n)
+        lay.set_buffers(dk, dv, n)
         new.layers.append(lay)
     new.n = n
     return new
