@@ -129,6 +129,24 @@ def test_reference_case_exercises_every_ending(llama_case):
     assert all(not any(s in r.text for s in stop) for r in ref)
 
 
+def test_cut_follows_plain_string_search(llama, llama_case):
+    # Engine and reference share the cutting rule, so check the rule itself against str.find
+    # on the full decoded completion.
+    model, tok = llama
+    stop, ref = llama_case
+    for p, r in zip(PROMPTS, ref):
+        ids, _, _ = reference_trace(model, tok, p, max_new_tokens=MAX_NEW)
+        full = tok.decode(ids, skip_special_tokens=True)
+        hits = [full.find(s) for s in stop if s in full]
+        if not hits:
+            assert (r.text, r.new_tokens, r.finish) == (full, len(ids), "length")
+            continue
+        assert r.finish == "stop" and r.text == full[:min(hits)]
+        before = tok.decode(ids[:r.new_tokens - 1], skip_special_tokens=True)
+        upto = tok.decode(ids[:r.new_tokens], skip_special_tokens=True)
+        assert not any(s in before for s in stop) and any(s in upto for s in stop)
+
+
 @pytest.mark.parametrize("batch_size", [1, 3, 8])
 @pytest.mark.parametrize("reuse_prefix", [True, False])
 def test_engine_equals_reference(llama, llama_case, batch_size, reuse_prefix):

@@ -45,7 +45,7 @@ Batched and one-at-a-time float32 runs of the same model differ by about 1e-6 in
 
 MAX_AUTO_BATCH = 32      # beyond this a 2-core CPU is compute-bound; bigger batches only add padding
 MEMORY_FRACTION = 0.25   # share of available memory the key/value cache may take
-PREFILL_TOKENS = 2048    # tokens per prefill forward call (bounds activation memory)
+PREFILL_TOKENS = 1024    # query tokens per prefill forward call (bounds score and activation memory)
 
 
 @dataclass
