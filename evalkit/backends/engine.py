@@ -15,7 +15,7 @@ How a call runs:
    (Ended rows run along until then; their tokens are ignored.)
 
 Results equal plain one-at-a-time ``generate`` (:func:`evalkit.backends.reference.reference_generate`)
-except at ties: float32 sums taken in another order differ by ~1e-6, which can swap two
+except at ties: float32 sums taken in another order differ by ~1e-5, which can swap two
 candidate tokens whose logits are that close. ``TIE_MARGIN`` is the gap below which we call
 a step a tie; ``Generation.min_margin`` tells callers how close each completion came.
 """
@@ -36,11 +36,12 @@ from .stops import StopWatcher, settle
 __all__ = ["Generation", "greedy_generate", "common_prefix_length", "eos_ids", "auto_batch_size",
            "kv_bytes_per_token", "TIE_MARGIN"]
 
-TIE_MARGIN = 1e-4
+TIE_MARGIN = 1e-3
 """Top-1 minus top-2 logit gap (absolute) under which a greedy step counts as a tie.
 
-Batched and one-at-a-time float32 runs of the same model differ by about 1e-6 in a logit;
-1e-4 leaves two orders of magnitude of room (common practice, not a published constant).
+On SmolLM2-135M in float32 the engine's and one-at-a-time ``generate``'s per-completion
+minimum margins differed by at most 3e-5 (measured here, 14 workshop prompts); 1e-3 leaves
+a factor of 30 for larger models and longer prompts (our choice, not a published constant).
 """
 
 MAX_AUTO_BATCH = 32      # beyond this a 2-core CPU is compute-bound; bigger batches only add padding
