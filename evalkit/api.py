@@ -11,7 +11,8 @@ from .errors import SpecError
 from .prompts import draw_exemplars, render
 from .spec import Decoding, Study, load_study, load_task
 
-__all__ = ["BUNDLED_TASKS", "DEMO_TASK", "demo_study", "study_for", "run", "preview", "check"]
+__all__ = ["BUNDLED_TASKS", "DEMO_TASK", "demo_study", "study_for", "run", "preview", "check", "audit",
+           "parse_pairs", "compare", "plan", "probe"]
 
 BUNDLED_TASKS = Path(__file__).resolve().parent.parent / "task_specs"
 DEMO_TASK = BUNDLED_TASKS / "workshop" / "workshop.toml"

@@ -110,7 +110,8 @@ def calculator_generate(backend: Backend, prompts: Sequence[str], *, max_new_tok
                 used[i] += c.new_tokens
                 finish = c.finish
                 if hit is not None:
-                    finish = c.finish + "; intervention limit reached"
+                    finish = c.finish + ("; token budget spent" if used[i] >= max_new_tokens
+                                         else "; intervention limit reached")
                 done = Completion(text=full, prompt_tokens=first[i].prompt_tokens, new_tokens=used[i],
                                   min_margin=margins[i],
                                   finish=finish, seconds=totals[i],

@@ -25,6 +25,7 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Literal
 
+from evalkit.compute import non_embedding_parameters
 from evalkit.errors import ModelError
 from evalkit.model_cache import (
     Progress,
@@ -415,6 +416,6 @@ def load(
         model=model, tokenizer=tok, source=source, dtype=dtype, threads=n_threads,
         load_seconds=time.perf_counter() - start, from_cache=from_cache,
         n_parameters=model.num_parameters(),
-        n_non_embedding_parameters=model.num_parameters(exclude_embeddings=True),
+        n_non_embedding_parameters=non_embedding_parameters(model),
         has_chat_template=has_template, config=_config_summary(model.config),
     )

@@ -78,6 +78,8 @@ def plan_probes(records: pd.DataFrame, max_new_tokens: int, stop: Sequence[str],
     """Probe requests for every reasoning record (plain arms only) whose chain has steps and an answer."""
     out = []
     chains = records[(records["style"].isin(["worked", "worked-zero"])) & records["extracted"].notna()]
+    if "answer_kind" in chains:  # arithmetic probes compare numbers; other answer kinds are skipped
+        chains = chains[chains["answer_kind"] == "number"]
     for r in chains.itertuples():
         steps = find_steps(r.completion)
         if not steps:
@@ -109,6 +111,9 @@ def probe_run(run_dir: str | Path, backend_factory: Callable | None = None, limi
         with store.con:
             store.con.executescript(_SCHEMA)
         records = store.records()
+        kinds = store.conditions().set_index("condition_id")["settings"].map(
+            lambda s: s.get("answer", {}).get("kind", "number"))
+        records["answer_kind"] = records["condition_id"].map(kinds)
         if limit:
             keep = records.groupby("condition_id", sort=False).head(limit).index
             records = records.loc[keep]

@@ -8,6 +8,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from .backends.base import TIE_MARGIN
 from .data import TaskData
 from .errors import StoreError
 from .manifest import MANIFEST_NAME, build_manifest, read_manifest, write_manifest
@@ -91,7 +92,7 @@ def summarise(records: pd.DataFrame, costs: pd.DataFrame | None = None, alpha: f
             "prompt_tokens": int(g["prompt_tokens"].sum()),
             "new_tokens": int(g["new_tokens"].sum()),
             "seconds": float(g["seconds"].sum()),
-            "ties": int((g["min_margin"].fillna(float("inf")) < 1e-3).sum()),
+            "ties": int((g["min_margin"].fillna(float("inf")) < TIE_MARGIN).sum()),
         })
     from .compute import merge_costs
 

@@ -17,6 +17,7 @@ from pathlib import Path
 
 import pandas as pd
 
+from .backends.base import TIE_MARGIN
 from .errors import StoreError
 from .run import DETERMINISTIC, load_run
 
@@ -64,10 +65,11 @@ def diff_runs(run_a: str | Path, run_b: str | Path) -> RunDiff:
     changed = m[m["outcome_a"] != m["outcome_b"]]
     text_changed = int((m["completion_a"] != m["completion_b"]).sum())
     rows = []
-    for (task, style, shots, draw), g in m.groupby(["task_a", "style_a", "shots_a", "draw_a"], sort=False):
+    by = ["task_a"] + (["model_a"] if use_model else []) + ["style_a", "shots_a", "draw_a"]
+    for key, g in m.groupby(by, sort=False):
         if len(g) < 2:
             continue
-        label = f"{task} | {style} | {shots}-shot | draw {draw}"
+        label = " | ".join(str(k) for k in key[:-2]) + f" | {key[-2]}-shot | draw {key[-1]}"
         c = paired_comparison(g["correct_a"].to_numpy(float), g["correct_b"].to_numpy(float),
                               label_a="run A", label_b="run B")
         rows.append({"setting": label, "n": c.n, "accuracy_a": c.accuracy_a, "accuracy_b": c.accuracy_b,
@@ -108,7 +110,7 @@ class Rerun:
     def summary(self) -> str:
         if self.identical:
             return f"identical: all {self.compared} records reproduced byte for byte in {self.folder}"
-        ties = int((self.differing["min_margin_a"].fillna(1.0) < 1e-3).sum()) if len(self.differing) else 0
+        ties = int((self.differing["min_margin_a"].fillna(1.0) < TIE_MARGIN).sum()) if len(self.differing) else 0
         text = (f"{len(self.differing)} of {self.compared} records differ ({ties} of them at a recorded near-tie); "
                 f"new run in {self.folder}")
         if self.changed_inputs:
@@ -118,6 +120,7 @@ class Rerun:
 
 def _changed_inputs(manifest: dict) -> list[str]:
     from .manifest import file_sha256
+    from .prompts import sha256_text
 
     changed = []
     for t in manifest.get("tasks", []):
@@ -125,6 +128,10 @@ def _changed_inputs(manifest: dict) -> list[str]:
         files += [(d.get("file"), d.get("sha256")) for d in t.get("data", {}).values()]
         for f, sha in files:
             if f and sha and (not Path(f).is_file() or file_sha256(f) != sha):
+                changed.append(f)
+        for tpl in t.get("templates", {}).values():
+            f, sha = tpl.get("file"), tpl.get("sha256")
+            if f and sha and (not Path(f).is_file() or sha256_text(Path(f).read_text(encoding="utf-8")) != sha):
                 changed.append(f)
     return changed
 

@@ -51,8 +51,9 @@ def default_cache_path() -> Path:
 
     if os.environ.get("EVALKIT_GENERATION_CACHE"):
         return Path(os.environ["EVALKIT_GENERATION_CACHE"])
-    root = Path(os.environ.get("EVALKIT_CACHE", Path.home() / ".cache" / "evalkit"))
-    return root / "generations.sqlite"
+    from .model_cache import cache_root
+
+    return cache_root() / "generations.sqlite"
 
 
 def expand(study: Study, tasks: list[TaskData] | None = None) -> list[PlannedCondition]:

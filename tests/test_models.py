@@ -361,9 +361,12 @@ def test_load_folder_ready_for_batched_generation(cache, tiny_chat):
     assert loaded.threads == 1 == torch.get_num_threads()
     assert loaded.from_cache is False and loaded.dtype == "float32"
     # Parameter counts against torch's own count (tied embedding counted once).
-    emb = loaded.model.get_input_embeddings().weight.numel()
+    emb = loaded.model.get_input_embeddings().weight
+    head = loaded.model.get_output_embeddings().weight
     assert loaded.n_parameters == sum(p.numel() for p in loaded.model.parameters())
-    assert loaded.n_non_embedding_parameters == loaded.n_parameters - emb
+    # non-embedding excludes the token embedding and an untied output projection (Kaplan et al., 2020)
+    untied = head.numel() if head.data_ptr() != emb.data_ptr() else 0
+    assert loaded.n_non_embedding_parameters == loaded.n_parameters - emb.numel() - untied
     assert loaded.config["num_hidden_layers"] == 2 and loaded.config["model_type"] == "llama"
     # Same logits as transformers' plain loading of the same folder.
     tok = AutoTokenizer.from_pretrained(tiny_chat)

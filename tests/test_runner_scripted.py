@@ -144,7 +144,7 @@ def test_diff_and_rerun(study, tmp_path):
     assert d.changed["question_id_a"].tolist() == ["n3"]
     assert (d.changed["outcome_a"].iloc[0], d.changed["outcome_b"].iloc[0]) == ("wrong", "correct")
     assert d.text_changed == 1 and "1 changed outcome (wrong → correct: 1)" in d.summary()
-    direct = d.comparisons.set_index("setting").loc["nursery | direct | 2-shot | draw 0"]
+    direct = d.comparisons.set_index("setting").loc["nursery | scripted-a | direct | 2-shot | draw 0"]
     assert direct["difference"] == pytest.approx(1 / 6)
 
     same = rerun(tmp_path / "a", out=tmp_path / "again", backend_factory=factory, progress=False)

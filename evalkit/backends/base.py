@@ -10,7 +10,10 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 from typing import Callable, Protocol, Sequence, runtime_checkable
 
-__all__ = ["Completion", "Backend", "ResultCallback"]
+__all__ = ["Completion", "Backend", "ResultCallback", "TIE_MARGIN"]
+
+TIE_MARGIN = 1e-3
+"""A top-1 minus top-2 logit gap below this is a near-tie: another batch shape may break it the other way."""
 
 
 @dataclass

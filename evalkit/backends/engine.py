@@ -202,7 +202,9 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
 
     ``batch_size`` overrides the rows decoded together (default: from memory, at most 32);
     ``progress`` is called with the number of items just finished (an increment);
-    ``on_result(index, generation)`` fires as each item finishes.
+    ``on_result(index, generation)`` fires as each item finishes. While it runs, the model's
+    ``config._attn_implementation`` names the engine's attention (restored afterwards), so
+    one model must not serve another caller at the same time.
     """
     if max_new_tokens < 1:
         raise BackendError(f"max_new_tokens must be at least 1, got {max_new_tokens}")
@@ -211,7 +213,6 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
     prompts = list(prompts)
     if not prompts:
         return []
-    start = time.perf_counter()
     enc = tokenizer(prompts, add_special_tokens=False)["input_ids"]
     for i, e in enumerate(enc):
         if not e:

@@ -56,6 +56,7 @@ def render_html(run, plots: dict[str, Path | None], comparisons: pd.DataFrame | 
                 verdicts: pd.DataFrame | None = None, costs: pd.DataFrame | None = None,
                 cheapest: str | None = None, probes: pd.DataFrame | None = None) -> str:
     """The report as one HTML string."""
+    from ..backends.base import TIE_MARGIN
     from ..compute import FLOPS_FORMULA
 
     env = jinja2.Environment(loader=jinja2.FileSystemLoader(_TEMPLATES), autoescape=True,
@@ -97,7 +98,7 @@ def render_html(run, plots: dict[str, Path | None], comparisons: pd.DataFrame | 
         comparisons=[] if comparisons is None else comparisons.to_dict("records"),
         forest_svg=_svg(plots.get("forest")), size_svg=_svg(plots.get("size")),
         compute_svg=_svg(plots.get("compute")), flops_formula=FLOPS_FORMULA, cheapest=cheapest,
-        audit=audit, records=records,
+        audit=audit, records=records, tie_margin=TIE_MARGIN,
         probes=None if probes is None or probes.empty else {"columns": list(probes.columns),
                                                             "rows": probes.to_dict("records")},
         conditions=list(dict.fromkeys(run.records["condition"])) if len(run.records) else [],

@@ -40,15 +40,16 @@ def _comparison_section(table: pd.DataFrame | None) -> list[str]:
         return []
     out = ["## Paired comparisons", "",
            "Each pair of settings is compared on the same questions: difference b − a with the 95% interval of "
-           "the paired differences; McNemar's exact test on the discordant questions when both sides have one "
-           "draw (a paired t-test on draw-averaged scores otherwise); Holm-adjusted across this table. A "
+           "the paired differences; McNemar's exact test on the discordant questions when every per-question score "
+           "is 0 or 1 (a paired t-test on draw-averaged scores otherwise); Holm-adjusted across this table. A "
            "difference is called real only when the adjusted p is below 0.05 and the interval excludes zero.", ""]
     out += [f"- {_cell(v)}" for v in table["verdict"]]
     out += ["", "| a | b | n | difference (points) | 95% interval | p (Holm) | detectable at 80% power |",
             "| --- | --- | ---: | ---: | --- | ---: | ---: |"]
     for r in table.itertuples():
         out.append(f"| {_cell(r.label_a)} | {_cell(r.label_b)} | {r.n} | {100 * r.difference:+.1f} | "
-                   f"[{_pct(r.ci_low)}, {_pct(r.ci_high)}] | {r.p_holm:.3g} | {_pct(r.mdd_80)} points |")
+                   f"[{_pct(r.ci_low)}, {_pct(r.ci_high)}] | {r.p_holm:.3g} | "
+                   f"{_pct(r.mdd_80) + ' points' if pd.notna(r.mdd_80) else 'none: too few questions'} |")
     return out + ["", "Forest plot: `plots/comparisons.svg`.", ""]
 
 
@@ -172,7 +173,9 @@ def render_report(run, parts=None) -> str:
     lines += _probe_section(parts.probes)
     ties = int(summary["ties"].sum()) if "ties" in summary else 0
     if ties:
-        lines += [f"{ties} records met a near-tie between the two best next tokens (top-2 logit gap < 1e-3): "
+        from ..backends.base import TIE_MARGIN
+
+        lines += [f"{ties} records met a near-tie between the two best next tokens (top-2 logit gap < {TIE_MARGIN:g}): "
                   "their completions may change under a different batch shape.", ""]
     lines += ["## Reproduce", "", "```", f"evalkit rerun {run.folder}", "```", ""]
     return "\n".join(lines)
