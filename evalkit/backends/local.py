@@ -20,8 +20,12 @@ class LocalBackend:
 
     def __init__(self, ref: str, dtype: str = "float32", threads: int | None = None,
                  batch_size: int | None = None, chunk: int = 32):
+        from transformers.utils import logging as hf_logging
+
         from ..models import load, resolve
 
+        # evalkit's own progress display covers loading; transformers' bars would interleave with it
+        hf_logging.disable_progress_bar()
         self.ref, self.batch_size, self.chunk = ref, batch_size, chunk
         self.loaded = load(resolve(ref), dtype=dtype, threads=threads)
         self.model, self.tokenizer = self.loaded.model, self.loaded.tokenizer
