@@ -62,14 +62,15 @@ def _summary_table(summary) -> Table:
 
 def _print_run(run) -> None:
     out.print(_summary_table(run.summary))
-    try:
-        from .stats import compare
+    from .stats import compare, shared_label
 
+    try:
         table = compare(run.records)
-        for v in table["verdict"]:
-            out.print(f"• {v}", highlight=False)
-    except ImportError:
-        pass
+    except EvalkitError:  # too few shared questions to compare: the summary stands alone
+        table = None
+    if table is not None:
+        for a, b, v in zip(table["setting_a"], table["setting_b"], table["verdict"]):
+            out.print(f"• {shared_label(a, b)}: {v}", highlight=False)
     c = run.counts or {}
     out.print(f"{len(run.records)} records ({c.get('generated', 0)} generated, {c.get('cached', 0)} from the "
               f"cache, {c.get('resumed', 0)} already in the store) in {run.seconds or 0:.1f} s")
@@ -213,8 +214,10 @@ def compare(
         t.add_row(r.label_a, r.label_b, str(r.n), f"{100 * r.difference:+.1f}",
                   f"[{100 * r.ci_low:.1f}, {100 * r.ci_high:.1f}]", f"{r.p_holm:.3g}", f"{100 * r.mdd_80:.1f}")
     out.print(t)
-    for v in table["verdict"]:
-        out.print(f"• {v}", highlight=False)
+    from .stats import shared_label
+
+    for a, b, v in zip(table["setting_a"], table["setting_b"], table["verdict"]):
+        out.print(f"• {shared_label(a, b)}: {v}", highlight=False)
     out.print(f"table: {Path(run_dir) / 'comparisons.csv'}; forest plot: {Path(run_dir) / 'plots' / 'comparisons.svg'}",
               highlight=False)
 

@@ -32,6 +32,7 @@ __all__ = [
     "verdict_sentence",
     "compare",
     "setting_label",
+    "shared_label",
     "scored_records",
 ]
 
@@ -338,6 +339,12 @@ def _requested_pairs(settings: dict, pairs) -> list[tuple]:
             raise DataError(f"pairs: ({x!r}, {y!r}) matches no two settings of one task; settings are: {known}")
         out.extend(found)
     return out
+
+
+def shared_label(a: str, b: str) -> str:
+    """What two setting labels have in common (e.g. the model and shots), to head their comparison."""
+    pa, pb = a.split(" | "), b.split(" | ")
+    return " | ".join(x for x, y in zip(pa, pb) if x == y) if len(pa) == len(pb) else ""
 
 
 def _short_labels(a: str, b: str) -> tuple[str, str]:

@@ -43,7 +43,10 @@ def _comparison_section(table: pd.DataFrame | None) -> list[str]:
            "the paired differences; McNemar's exact test on the discordant questions when every per-question score "
            "is 0 or 1 (a paired t-test on draw-averaged scores otherwise); Holm-adjusted across this table. A "
            "difference is called real only when the adjusted p is below 0.05 and the interval excludes zero.", ""]
-    out += [f"- {_cell(v)}" for v in table["verdict"]]
+    from ..stats import shared_label
+
+    out += [f"- **{_cell(shared_label(a, b))}**: {_cell(v)}"
+            for a, b, v in zip(table["setting_a"], table["setting_b"], table["verdict"])]
     out += ["", "| a | b | n | difference (points) | 95% interval | p (Holm) | detectable at 80% power |",
             "| --- | --- | ---: | ---: | --- | ---: | ---: |"]
     for r in table.itertuples():
