@@ -208,7 +208,7 @@ class RunStore:
             )
 
     def iter_records(self) -> Iterator[Record]:
-        cur = self.con.execute(f"SELECT {', '.join(_RECORD_FIELDS)} FROM records ORDER BY rowid")
+        cur = self.con.execute(f"SELECT {', '.join(_RECORD_FIELDS)} FROM records ORDER BY condition_id, question_id")
         for row in cur:
             d = dict(zip(_RECORD_FIELDS, row))
             d["correct"], d["cached"] = bool(d["correct"]), bool(d["cached"])
@@ -221,7 +221,7 @@ class RunStore:
 
         df = pd.read_sql_query(
             "SELECT c.label AS condition, c.task, c.model, c.style, c.shots, c.draw, c.seed, r.* "
-            "FROM records r JOIN conditions c USING (condition_id) ORDER BY c.rowid, r.rowid",
+            "FROM records r JOIN conditions c USING (condition_id) ORDER BY c.rowid, r.question_id",
             self.con,
         )
         df["correct"] = df["correct"].astype(bool)
