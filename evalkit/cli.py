@@ -60,6 +60,19 @@ def _summary_table(summary) -> Table:
     return t
 
 
+def _frame_table(df, title: str, fmt=str) -> Table:
+    """A rich table of a DataFrame: text columns left, the rest right, cells through `fmt`."""
+    import pandas as pd
+
+    t = Table(title=title)
+    for col in df.columns:
+        numeric = pd.api.types.is_numeric_dtype(df[col]) and not pd.api.types.is_bool_dtype(df[col])
+        t.add_column(str(col), justify="right" if numeric else "left")
+    for row in df.itertuples(index=False):
+        t.add_row(*["" if v is None or (isinstance(v, float) and v != v) else fmt(v) for v in row])
+    return t
+
+
 def _print_run(run) -> None:
     out.print(_summary_table(run.summary))
     from .stats import compare, shared_label
@@ -167,12 +180,7 @@ def audit(run_dir: Path = typer.Argument(..., help="A run folder.")) -> None:
     if table.empty:
         out.print("no reasoning records to audit (direct-style records carry no chain)")
         return
-    t = Table(title="chain verdicts per condition")
-    for col in table.columns:
-        t.add_column(str(col), justify="left" if col == "condition" else "right")
-    for row in table.itertuples(index=False):
-        t.add_row(*[str(v) for v in row])
-    out.print(t)
+    out.print(_frame_table(table, "chain verdicts per condition"))
     out.print(f"verdicts stored in {Path(run_dir) / 'store.sqlite'}; reports rebuilt", highlight=False)
 
 
@@ -189,12 +197,8 @@ def probe(
     if table.empty:
         out.print("no reasoning records with arithmetic steps to probe")
         return
-    t = Table(title="share of answers that changed under each probe")
-    for col in table.columns:
-        t.add_column(str(col), justify="left" if col == "condition" else "right")
-    for row in table.itertuples(index=False):
-        t.add_row(*[f"{100 * v:.0f}%" if isinstance(v, float) else str(v) for v in row])
-    out.print(t)
+    out.print(_frame_table(table, "share of answers that changed under each probe",
+                           lambda v: f"{100 * v:.0f}%" if isinstance(v, float) else str(v)))
 
 
 @command
@@ -282,12 +286,11 @@ def models() -> None:
     from .models import list_models
 
     df = list_models()
-    t = Table(title="models")
-    for col in df.columns:
-        t.add_column(str(col))
-    for row in df.itertuples(index=False):
-        t.add_row(*["" if v is None else str(v) for v in row])
-    out.print(t)
+    pd = sys.modules["pandas"]
+    df["size_mb"] = (df.pop("size_bytes") / 1e6).round(1)
+    df["parameters"] = df["parameters"].map(lambda n: f"{n / 1e6:.0f}M" if pd.notna(n) else "")
+    out.print(_frame_table(df[["name", "kind", "present", "converted", "size_mb", "parameters", "instruct", "path"]],
+                           "models"))
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -244,14 +244,19 @@ def _read_toml(path: Path) -> dict:
         raise SpecError(str(path), None, f"not valid TOML: {e}") from None
 
 
+def _validated(model: type[BaseModel], path: Path):
+    """A TOML file validated as `model`, problems as one SpecError line."""
+    raw = _read_toml(path)
+    try:
+        return model.model_validate({**raw, "source_file": path.resolve()})
+    except ValidationError as e:
+        raise _format_error(path, e) from None
+
+
 def load_task(path: str | Path) -> TaskSpec:
     """Read and validate a task spec file."""
     path = Path(path)
-    raw = _read_toml(path)
-    try:
-        spec = TaskSpec.model_validate({**raw, "source_file": path.resolve()})
-    except ValidationError as e:
-        raise _format_error(path, e) from None
+    spec = _validated(TaskSpec, path)
     for style, rel in spec.templates.items():
         if not spec.resolve(rel).is_file():
             raise SpecError(str(path), f"templates.{style}", f"template file '{rel}' not found")
@@ -265,11 +270,7 @@ def load_task(path: str | Path) -> TaskSpec:
 def load_study(path: str | Path) -> Study:
     """Read and validate a study file."""
     path = Path(path)
-    raw = _read_toml(path)
-    try:
-        study = Study.model_validate({**raw, "source_file": path.resolve()})
-    except ValidationError as e:
-        raise _format_error(path, e) from None
+    study = _validated(Study, path)
     for i, task in enumerate(study.task_paths()):
         if not task.is_file():
             raise SpecError(str(path), f"tasks.{i}", f"task spec '{study.tasks[i]}' not found")
