@@ -286,7 +286,7 @@ def models() -> None:
     from .models import list_models
 
     df = list_models()
-    pd = sys.modules["pandas"]
+    import pandas as pd
     df["size_mb"] = (df.pop("size_bytes") / 1e6).round(1)
     df["parameters"] = df["parameters"].map(lambda n: f"{n / 1e6:.0f}M" if pd.notna(n) else "")
     out.print(_frame_table(df[["name", "kind", "present", "converted", "size_mb", "parameters", "instruct", "path"]],
