@@ -211,14 +211,16 @@ def compare(
     from . import api
 
     table = api.compare(run_dir, api.parse_pairs(pair or []), target_difference=target)
-    t = Table(title="paired comparisons (b − a)")
-    for col in ("a", "b", "n", "difference", "95% interval", "p (Holm)", "detectable at 80%"):
-        t.add_column(col, justify="left" if col in ("a", "b") else "right")
-    for r in table.itertuples():
-        t.add_row(r.label_a, r.label_b, str(r.n), f"{100 * r.difference:+.1f}",
-                  f"[{100 * r.ci_low:.1f}, {100 * r.ci_high:.1f}]", f"{r.p_holm:.3g}", f"{100 * r.mdd_80:.1f}")
-    out.print(t)
     from .stats import shared_label
+
+    t = Table(title="paired comparisons (b − a)")
+    for col in ("setting", "a", "b", "n", "difference", "95% interval", "p (Holm)", "detectable at 80%"):
+        t.add_column(col, justify="left" if col in ("setting", "a", "b") else "right")
+    for r in table.itertuples():
+        mdd = f"{100 * r.mdd_80:.1f}" if r.mdd_80 == r.mdd_80 else "none"  # NaN: no difference is detectable
+        t.add_row(shared_label(r.setting_a, r.setting_b), r.label_a, r.label_b, str(r.n), f"{100 * r.difference:+.1f}",
+                  f"[{100 * r.ci_low:.1f}, {100 * r.ci_high:.1f}]", f"{r.p_holm:.3g}", mdd)
+    out.print(t)
 
     for a, b, v in zip(table["setting_a"], table["setting_b"], table["verdict"]):
         out.print(f"• {shared_label(a, b)}: {v}", highlight=False)
