@@ -50,7 +50,7 @@ def _comparison_section(table: pd.DataFrame | None) -> list[str]:
     out += ["", "| a | b | n | difference (points) | 95% interval | p (Holm) | detectable at 80% power |",
             "| --- | --- | ---: | ---: | --- | ---: | ---: |"]
     for r in table.itertuples():
-        out.append(f"| {_cell(r.label_a)} | {_cell(r.label_b)} | {r.n} | {100 * r.difference:+.1f} | "
+        out.append(f"| {_cell(r.setting_a)} | {_cell(r.setting_b)} | {r.n} | {100 * r.difference:+.1f} | "
                    f"[{_pct(r.ci_low)}, {_pct(r.ci_high)}] | {r.p_holm:.3g} | "
                    f"{_pct(r.mdd_80) + ' points' if pd.notna(r.mdd_80) else 'none: too few questions'} |")
     return out + ["", "Forest plot: `plots/comparisons.svg`.", ""]
