@@ -172,6 +172,8 @@ def probe_rates(probes: pd.DataFrame, records: pd.DataFrame) -> pd.DataFrame:
     p["column"] = [f"early {int(round(100 * f))}%" if k == "early" else "injected mistake"
                    for k, f in zip(p["probe"], p["fraction"])]
     table = p.pivot_table(index="condition_id", columns="column", values="changed", aggfunc="mean", sort=False)
+    order = [f"early {int(round(100 * f))}%" for f in sorted(set(p.loc[p["probe"] == "early", "fraction"]))]
+    table = table[[c for c in order + ["injected mistake"] if c in table.columns]]
     counts = p[p["probe"] == "early"].groupby("condition_id")["question_id"].nunique()
     table.insert(0, "chains", counts.reindex(table.index).fillna(0).astype(int))
     table.insert(0, "condition", labels.reindex(table.index).to_numpy())
