@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import inspect
 from typing import Sequence
 
 from ..errors import BackendError
@@ -12,21 +11,18 @@ __all__ = ["LocalBackend"]
 
 
 class LocalBackend:
-    """A transformers causal LM loaded in this process.
-
-    `chunk` bounds how many prompts go to the engine at once when the engine cannot report
-    results one by one, so records still reach the store as work completes.
-    """
+    """A transformers causal LM loaded in this process, decoded by the engine, which reports
+    each completion as it finishes so the runner can commit it at once."""
 
     def __init__(self, ref: str, dtype: str = "float32", threads: int | None = None,
-                 batch_size: int | None = None, chunk: int = 32):
+                 batch_size: int | None = None):
         from transformers.utils import logging as hf_logging
 
         from ..models import load, resolve
 
         # evalkit's own progress display covers loading; transformers' bars would interleave with it
         hf_logging.disable_progress_bar()
-        self.ref, self.batch_size, self.chunk = ref, batch_size, chunk
+        self.ref, self.batch_size = ref, batch_size
         self.loaded = load(resolve(ref), dtype=dtype, threads=threads)
         self.model, self.tokenizer = self.loaded.model, self.loaded.tokenizer
         self.chat = bool(getattr(self.tokenizer, "chat_template", None))
@@ -74,28 +70,19 @@ class LocalBackend:
                  on_result: ResultCallback | None = None) -> list[Completion]:
         from .engine import greedy_generate
 
-        streams = "on_result" in inspect.signature(greedy_generate).parameters
-        out: list[Completion] = []
-        step = len(prompts) if streams else max(1, self.chunk)
-        for start in range(0, len(prompts), step):
-            part = list(prompts[start:start + step])
+        done: dict[int, Completion] = {}
 
-            def relay(i: int, g, _start=start):
-                if on_result:
-                    on_result(_start + i, _completion(g))
+        def relay(i: int, g) -> None:
+            done[i] = _completion(g)
+            if on_result:
+                on_result(i, done[i])
 
-            kwargs = {"on_result": relay} if streams else {}
-            try:
-                gens = greedy_generate(self.model, self.tokenizer, part, max_new_tokens=max_new_tokens,
-                                       stop=list(stop), batch_size=self.batch_size, **kwargs)
-            except RuntimeError as e:  # torch errors (out of memory, shape) are translated here
-                raise BackendError(f"model '{self.ref}': generation failed: {str(e).splitlines()[0]}") from None
-            done = [_completion(g) for g in gens]
-            if not streams and on_result:
-                for i, c in enumerate(done):
-                    on_result(start + i, c)
-            out.extend(done)
-        return out
+        try:
+            greedy_generate(self.model, self.tokenizer, list(prompts), max_new_tokens=max_new_tokens,
+                            stop=list(stop), batch_size=self.batch_size, on_result=relay)
+        except RuntimeError as e:  # torch errors (out of memory, shape) are translated here
+            raise BackendError(f"model '{self.ref}': generation failed: {str(e).splitlines()[0]}") from None
+        return [done[i] for i in range(len(prompts))]
 
 
 def _completion(g) -> Completion:
