@@ -7,6 +7,8 @@ the prefix is kept once, [kv_heads, P, head_dim], and the queries of all rows me
 single matrix product; each row's own tokens (prompt suffix and generated text) are a
 separate, short per-row product. Scores of both parts are joined before one softmax, so the
 result is ordinary attention over [prefix | own tokens] (the eager formula; float32 softmax).
+That is the decode step (one query token per row). Prefill, with many query tokens per row,
+goes through torch's fused attention instead (see ``_fused``).
 
 transformers calls attention through a registry keyed by ``config._attn_implementation``;
 the engine registers this function under ATTENTION_NAME and selects it only while it runs.
@@ -38,6 +40,11 @@ def split_attention(module, query, key, value, attention_mask, scaling=None, dro
     Hkv = key.shape[1]
     r = Hq // Hkv  # query heads per key/value head; head h = kv_head * r + j, as repeat_kv lays them
     scale = scaling if scaling is not None else D ** -0.5
+    if softcap is None:
+        if T > 1 or prefix is None:
+            return _fused(query, key, value, prefix, attention_mask, scale)
+        if _FLASH is not None:
+            return _merged(query, key, value, prefix, attention_mask, scale)
     q = query.reshape(B, Hkv, r * T, D)
     scores = torch.matmul(q, key.transpose(-1, -2))                          # [B, Hkv, rT, L]
     P = 0
@@ -61,6 +68,73 @@ def split_attention(module, query, key, value, attention_mask, scaling=None, dro
         wp = weights[..., :P].permute(1, 0, 2, 3).reshape(Hkv, B * r * T, P)
         out = out + torch.matmul(wp, pv).reshape(Hkv, B, r * T, D).permute(1, 0, 2, 3)
     return out.reshape(B, Hq, T, D).transpose(1, 2).contiguous(), None
+
+
+# torch's CPU flash-attention kernel, which also returns each query's log-sum-exp of scores.
+_FLASH = getattr(torch.ops.aten, "_scaled_dot_product_flash_attention_for_cpu", None)
+
+
+def _additive(allowed: torch.Tensor, dtype) -> torch.Tensor:
+    return torch.zeros(allowed.shape, dtype=dtype, device=allowed.device).masked_fill_(
+        ~allowed, float("-inf"))
+
+
+def _merged(query, key, value, prefix, attention_mask, scale):
+    """Decode (one query token per row): prefix and own tokens attended separately, then merged.
+
+    All rows' queries meet the shared prefix in one fused call (the prefix is read once per
+    step, not once per row); each row's own tokens in a second, batched call. Each call
+    gives its output o and log-sum-exp l of the scores; attention over both parts is
+    ``o_own + sigmoid(l_prefix - l_own) * (o_prefix - o_own)``, the softmax over [prefix |
+    own] regrouped. No [B, heads, P + L] score tensor is built, masked or copied.
+    """
+    pk, pv = prefix
+    B, Hq, T, D = query.shape
+    Hkv, P = pk.shape[0], pk.shape[1]
+    r = Hq // Hkv
+    L = key.shape[2]
+    # Query order (row, head-in-group, token) within each key/value head, as in the split form.
+    qp = query.reshape(B, Hkv, r * T, D).permute(1, 0, 2, 3).reshape(1, Hkv, B * r * T, D)
+    seen = attention_mask[..., :P]                                           # [B, 1, T, P]
+    pmask = None
+    if not bool(seen.all()):  # sliding-window layers may hide part of the prefix
+        pmask = _additive(seen.expand(B, r, T, P).reshape(1, 1, B * r * T, P), query.dtype)
+    o1, l1 = _FLASH(qp, pk[None], pv[None], attn_mask=pmask, scale=scale)[:2]
+    o1 = o1.reshape(Hkv, B, r * T, D).permute(1, 0, 2, 3)                    # [B, Hkv, rT, D]
+    l1 = l1.reshape(Hkv, B, r * T).permute(1, 0, 2)                          # [B, Hkv, rT]
+    if pmask is not None:
+        # A query whose window has left the prefix entirely: that part must weigh nothing
+        # (the kernel's output for an all-masked row is not defined as zero weight).
+        hidden = ~seen.any(-1).expand(B, r, T).reshape(B, 1, r * T)          # [B, 1, rT]
+        if bool(hidden.any()):
+            l1 = l1.masked_fill(hidden, float("-inf"))
+            o1 = o1.masked_fill(hidden[..., None], 0.0)
+    own = attention_mask[..., P:]                                            # [B, 1, T, L]
+    omask = _additive(own[:, :, None].expand(B, 1, r, T, L).reshape(B, 1, r * T, L), query.dtype)
+    o2, l2 = _FLASH(query.reshape(B, Hkv, r * T, D), key, value, attn_mask=omask, scale=scale)[:2]
+    w = torch.sigmoid(l1 - l2)[..., None].to(query.dtype)                   # log-sum-exps are float32
+    out = o2 + w * (o1 - o2)
+    return out.reshape(B, Hq, T, D).transpose(1, 2).contiguous(), None
+
+
+def _fused(query, key, value, prefix, attention_mask, scale):
+    """Prefill (several query tokens per row): torch's fused attention over [prefix | own].
+
+    With T query tokens per row the prefix's reads are shared by T queries, so joining it to
+    each row's keys costs little next to the scores; torch's fused kernel never materialises
+    the [B, heads, T, P+L] scores (2.5x faster than the split form at 32 rows x 32 tokens
+    over a 475-token prefix, measured here). Masks always leave each query one visible
+    column, so no softmax row is empty.
+    """
+    B = query.shape[0]
+    if prefix is not None:
+        pk, pv = prefix
+        key = torch.cat([pk.expand(B, -1, -1, -1), key], dim=2)
+        value = torch.cat([pv.expand(B, -1, -1, -1), value], dim=2)
+    out = torch.nn.functional.scaled_dot_product_attention(
+        query, key, value, attn_mask=attention_mask, scale=scale,
+        enable_gqa=query.shape[1] != key.shape[1])
+    return out.transpose(1, 2).contiguous(), None
 
 
 AttentionInterface.register(ATTENTION_NAME, split_attention)
