@@ -324,3 +324,35 @@ def test_other_architectures_equal_reference(llama, arch):
     got = greedy_generate(model, tok, PROMPTS[:8], max_new_tokens=12, batch_size=3)
     assert len({r.text for r in ref}) > 4  # context-dependent text, not one repeated token
     assert _compare(got, ref) <= 1
+
+
+def test_greedy_pick_equals_argmax_including_exact_ties():
+    # torch.argmax (what generate's greedy step uses) returns the first maximal index;
+    # greedy_pick must agree everywhere, exact ties included, and report the top-2 gap.
+    g = torch.Generator().manual_seed(0)
+    logits = torch.randn(64, 1000, generator=g)
+    logits[3, 10] = logits[3, 900] = logits[3].max() + 1.0     # exact tie, ids far apart
+    logits[7, :] = 0.0                                          # everything tied
+    logits[9, 998] = logits[9, 999] = 50.0                      # tie at the end of the vocabulary
+    toks, gaps = engine_mod.greedy_pick(logits)
+    assert toks == logits.argmax(dim=-1).tolist()
+    assert gaps[3] == gaps[7] == gaps[9] == 0.0
+    top = torch.topk(logits, 2, dim=-1).values
+    assert gaps == (top[:, 0] - top[:, 1]).tolist()
+
+
+def test_transposed_linears_equal_nn_linear_and_restore(llama):
+    from evalkit.backends.linear_order import MAX_TRANSPOSED_ROWS, transposed_linears
+
+    model = llama[0]
+    lin = next(m for m in model.modules() if type(m) is torch.nn.Linear)
+    g = torch.Generator().manual_seed(1)
+    for rows in (1, 5, MAX_TRANSPOSED_ROWS + 1):
+        x = torch.randn(rows, 1, lin.in_features, generator=g)
+        want = torch.nn.functional.linear(x, lin.weight, lin.bias)
+        with transposed_linears(model) as n:
+            assert n > 0 and "forward" in vars(lin)
+            got = lin(x)
+        assert got.shape == want.shape
+        torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-5)  # same sums, other order
+    assert "forward" not in vars(lin) and not hasattr(lin, "_evalkit_contiguous")

@@ -114,6 +114,22 @@ def auto_batch_size(model, row_tokens: int, n_prompts: int) -> int:
     return max(1, min(MAX_AUTO_BATCH, fit, n_prompts))
 
 
+def greedy_pick(logits: torch.Tensor) -> tuple[list[int], list[float]]:
+    """Greedy token per row of ``logits`` [B, V] and its top-1 minus top-2 logit gap.
+
+    One top-2 scan gives both. The token is the one ``argmax`` (what ``generate`` uses)
+    picks: on an exact tie topk may list either token first, while argmax takes the lower
+    id, so only then is a second scan paid.
+    """
+    logits = logits.float()
+    top, idx = torch.topk(logits, 2, dim=-1)
+    gap = top[:, 0] - top[:, 1]
+    best = idx[:, 0]
+    if bool((gap == 0).any()):
+        best = torch.where(gap == 0, logits.argmax(dim=-1), best)
+    return best.tolist(), gap.tolist()
+
+
 class _Row:
     __slots__ = ("item", "prompt_len", "ids", "margins", "done", "seconds")
 
@@ -141,10 +157,7 @@ class _Run:
         live = [r for r in rows if not r.done]
         for r in live:
             r.seconds += seconds / max(1, len(live))
-        logits = logits.float()
-        top = torch.topk(logits, 2, dim=-1).values
-        toks = logits.argmax(dim=-1).tolist()
-        gaps = (top[:, 0] - top[:, 1]).tolist()
+        toks, gaps = greedy_pick(logits)
         for r, t, g in zip(rows, toks, gaps):
             if r.done:
                 continue

@@ -39,21 +39,29 @@ def _forward(self: nn.Linear, x: torch.Tensor) -> torch.Tensor:
         y = torch.addmm(self.bias[:, None], self.weight, flat.t())
     else:
         y = torch.mm(self.weight, flat.t())
-    return y.t().contiguous().reshape(*x.shape[:-1], self.weight.shape[0])
+    y = y.t()  # [rows, out] with strides (1, rows): a view, no copy
+    if getattr(self, "_evalkit_contiguous", False):
+        y = y.contiguous()
+    return y.reshape(*x.shape[:-1], self.weight.shape[0])
 
 
 @contextlib.contextmanager
 def transposed_linears(model: nn.Module):
     """Within the block, the model's plain ``nn.Linear`` layers use the ``W @ x.T`` form."""
     swapped = []
+    head = model.get_output_embeddings() if hasattr(model, "get_output_embeddings") else None
     for m in model.modules():
         # Only plain float linear layers: subclasses (quantized, LoRA, ...) keep their own forward.
         if type(m) is nn.Linear and "forward" not in vars(m) and m.weight.dim() == 2 \
                 and m.weight.is_floating_point():
             m.forward = types.MethodType(_forward, m)
+            # Logits are scanned along the vocabulary, which wants them contiguous; other
+            # outputs feed element-wise ops and views, which take the transposed layout as is.
+            m._evalkit_contiguous = m is head
             swapped.append(m)
     try:
         yield len(swapped)
     finally:
         for m in swapped:
             del m.forward
+            del m._evalkit_contiguous
