@@ -1,0 +1,37 @@
+"""The runner benchmark runs end to end (a real process) on a tiny model built from a config.
+
+Its speed figures mean nothing on a tiny model and are not checked; what is checked is that
+the script keeps working: every section is printed, and the three methods' completions are
+compared with the engine's (plain and batched ``generate`` are the outside reference).
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+from .tiny import build_tiny_model
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def test_benchmark_quick_run_prints_every_section(tmp_path):
+    folder = build_tiny_model(tmp_path / "tiny", arch="llama", seed=0)
+    proc = subprocess.run([sys.executable, str(ROOT / "benchmarks" / "runner_speed.py"),
+                           "--model-folder", str(folder), "--quick"],
+                          capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    out = proc.stdout
+    for heading in ("Machine: memory read", "| style | method |", "| decode batch |",
+                    "| direct shots |", "bfloat16 items/s", "Peak resident memory"):
+        assert heading in out, heading
+    for style in ("direct", "worked"):
+        rows = [line for line in out.splitlines()
+                if line.startswith(f"| {style} | ") and line.count("|") == 9]
+        assert [r.split("|")[2].strip()[:5] for r in rows] == ["plain", "batch", "evalk"], rows
+        # Same text as the engine: a/b with b the number of items that method ran.
+        same = [line.rstrip(" |").rsplit("|", 1)[1].strip() for line in rows]
+        assert all("/" in s for s in same), same
+    # Either all texts agreed, or each difference is listed with its near-tie count.
+    assert "Every completion of every method equals the engine's" in out or "completion(s) differ" in out
