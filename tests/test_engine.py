@@ -350,9 +350,13 @@ def test_transposed_linears_equal_nn_linear_and_restore(llama):
     for rows in (1, 5, MAX_TRANSPOSED_ROWS + 1):
         x = torch.randn(rows, 1, lin.in_features, generator=g)
         want = torch.nn.functional.linear(x, lin.weight, lin.bias)
+        head = model.get_output_embeddings()
         with transposed_linears(model) as n:
             assert n > 0 and "forward" in vars(lin)
             got = lin(x)
+            logits = head(torch.randn(rows, 1, head.in_features, generator=g))
         assert got.shape == want.shape
         torch.testing.assert_close(got, want, rtol=1e-5, atol=1e-5)  # same sums, other order
-    assert "forward" not in vars(lin) and not hasattr(lin, "_evalkit_contiguous")
+        assert logits.is_contiguous()  # the vocabulary scan wants the logits laid out in rows
+    assert "forward" not in vars(lin) and "forward" not in vars(head)
+    assert torch.equal(lin(x), torch.nn.functional.linear(x, lin.weight, lin.bias))  # nn.Linear's own again

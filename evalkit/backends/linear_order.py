@@ -19,7 +19,7 @@ the caller loaded it.
 from __future__ import annotations
 
 import contextlib
-import types
+import functools
 
 import torch
 from torch import nn
@@ -29,7 +29,7 @@ __all__ = ["transposed_linears", "MAX_TRANSPOSED_ROWS"]
 MAX_TRANSPOSED_ROWS = 256  # measured crossover: at 512 rows and more nn.Linear's own form was faster
 
 
-def _forward(self: nn.Linear, x: torch.Tensor) -> torch.Tensor:
+def _forward(self: nn.Linear, x: torch.Tensor, contiguous: bool = False) -> torch.Tensor:
     k = x.shape[-1]
     rows = x.numel() // k if k else 0
     if rows == 0 or rows > MAX_TRANSPOSED_ROWS or x.dtype != self.weight.dtype:
@@ -40,7 +40,7 @@ def _forward(self: nn.Linear, x: torch.Tensor) -> torch.Tensor:
     else:
         y = torch.mm(self.weight, flat.t())
     y = y.t()  # [rows, out] with strides (1, rows): a view, no copy
-    if getattr(self, "_evalkit_contiguous", False):
+    if contiguous:
         y = y.contiguous()
     return y.reshape(*x.shape[:-1], self.weight.shape[0])
 
@@ -54,14 +54,12 @@ def transposed_linears(model: nn.Module):
         # Only plain float linear layers: subclasses (quantized, LoRA, ...) keep their own forward.
         if type(m) is nn.Linear and "forward" not in vars(m) and m.weight.dim() == 2 \
                 and m.weight.is_floating_point():
-            m.forward = types.MethodType(_forward, m)
             # Logits are scanned along the vocabulary, which wants them contiguous; other
             # outputs feed element-wise ops and views, which take the transposed layout as is.
-            m._evalkit_contiguous = m is head
+            m.forward = functools.partial(_forward, m, contiguous=m is head)
             swapped.append(m)
     try:
         yield len(swapped)
     finally:
         for m in swapped:
             del m.forward
-            del m._evalkit_contiguous

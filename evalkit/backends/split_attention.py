@@ -114,9 +114,9 @@ def _merged(query, key, value, prefix, attention_mask, scale):
     own = attention_mask[..., P:][:, :, None].expand(B, 1, r, T, L).reshape(B, 1, r * T, L)
     if T == 1:
         # One query per row: plain products beat the fused kernel on such tiny problems.
-        s = torch.matmul(q * scale, key.transpose(-1, -2)).masked_fill_(~own, float("-inf"))
-        l2 = torch.logsumexp(s.float(), dim=-1)                              # [B, Hkv, rT]
-        o2 = torch.matmul(torch.exp(s.float() - l2[..., None]).to(query.dtype), value)
+        s = torch.matmul(q * scale, key.transpose(-1, -2)).masked_fill_(~own, float("-inf")).float()
+        l2 = torch.logsumexp(s, dim=-1)                                      # [B, Hkv, rT]
+        o2 = torch.matmul(torch.exp(s - l2[..., None]).to(query.dtype), value)
     else:
         o2, l2 = _FLASH(q, key, value, attn_mask=_additive(own, query.dtype), scale=scale)[:2]
     w = torch.sigmoid(l1 - l2)[..., None].to(query.dtype)                   # log-sum-exps are float32
