@@ -19,7 +19,7 @@ import pytest
 import torch
 
 from evalkit.errors import ModelError
-from evalkit.model_cache import WheelPart, converted_dir
+from evalkit.model_cache import WheelPart, converted_dir, join_bpe_merges
 from evalkit.models import PACKAGED_MODELS, PackagedModel, fetch, list_models, load, resolve
 from tests.tiny import SPECIAL_TOKENS, build_tiny_gguf, build_tiny_model
 
@@ -444,6 +444,9 @@ def test_gguf_load_converts_once_then_reads_the_cache(cache, tiny_gguf, tiny_ggu
     assert marker["source_sha256"] == sha and marker["source_file"] == tiny_gguf.name
     assert (conv / "model.safetensors").is_file() and (conv / "tokenizer.json").is_file()
     assert [p.name for p in conv.parent.iterdir() if p.name.startswith(".")] == []
+    assert marker["tokenizer_merges"] == "joined"
+    merges = json.loads((conv / "tokenizer.json").read_text())["model"]["merges"]
+    assert merges and all(isinstance(m, str) and m.count(" ") == 1 for m in merges)
 
     second = load(str(tiny_gguf), threads=1)
     assert second.from_cache is True
@@ -460,6 +463,24 @@ def test_gguf_load_converts_once_then_reads_the_cache(cache, tiny_gguf, tiny_ggu
             assert ids == ref_ids
             assert torch.equal(logits, ref_logits)
         assert second.tokenizer.decode(ref_ids) == text
+
+
+def test_gguf_cache_from_an_earlier_version_gets_joined_merges_once(cache, tiny_gguf):
+    first = load(str(tiny_gguf), threads=1)
+    conv = converted_dir(first.source.sha256)
+    # As an earlier evalkit left it: merges as pairs (the tokenizers library's own form).
+    first.tokenizer.backend_tokenizer.save(str(conv / "tokenizer.json"))
+    marker = json.loads((conv / "evalkit-converted.json").read_text())
+    del marker["tokenizer_merges"]
+    (conv / "evalkit-converted.json").write_text(json.dumps(marker))
+    assert isinstance(json.loads((conv / "tokenizer.json").read_text())["model"]["merges"][0], list)
+
+    second = load(str(tiny_gguf), threads=1)
+    assert second.from_cache is True
+    assert json.loads((conv / "evalkit-converted.json").read_text())["tokenizer_merges"] == "joined"
+    assert isinstance(json.loads((conv / "tokenizer.json").read_text())["model"]["merges"][0], str)
+    for text in TEXTS:
+        assert second.tokenizer(text)["input_ids"] == first.tokenizer(text)["input_ids"]
 
 
 def test_gguf_bfloat16_is_cast_after_conversion_and_cache_stays_float32(cache, tiny_gguf):
@@ -493,3 +514,63 @@ def test_broken_gguf_raises_model_error_naming_the_file(cache, tmp_path):
     bad.write_bytes(b"GGUF\x03\x00\x00\x00")
     with pytest.raises(ModelError, match=r"cannot load model '.*truncated\.gguf' \(GGUF .*truncated\.gguf\)"):
         load(str(bad), threads=1)
+
+
+# ---------------------------------------------------------------- tokenizer.json merges
+
+
+_MERGE_TEXTS = ["Chain 3 slipped twice; 12 links replaced.", "naïve café — 5 €, 2 × 7",
+                "ferry at 07:45\n\ttab", "emoji 🚲🚲 and CJK 渡轮", "", "   leading spaces"]
+
+
+def _bpe(pre_tokenizer) -> "tokenizers.Tokenizer":
+    from tokenizers import Tokenizer, models, trainers
+
+    tok = Tokenizer(models.BPE(unk_token="[UNK]"))
+    tok.pre_tokenizer = pre_tokenizer
+    corpus = ["the ferry leaves at nine", "the seed tray holds forty cells", "naïve café"] * 20
+    tok.train_from_iterator(corpus, trainers.BpeTrainer(vocab_size=120, special_tokens=["[UNK]"],
+                                                        show_progress=False))
+    return tok
+
+
+def test_joined_merges_build_the_same_tokenizer(tmp_path):
+    from tokenizers import Tokenizer, pre_tokenizers
+
+    original = _bpe(pre_tokenizers.ByteLevel(add_prefix_space=False))
+    path = tmp_path / "tokenizer.json"
+    original.save(str(path))
+    pairs = json.loads(path.read_text())["model"]["merges"]
+    assert isinstance(pairs[0], list)  # the tokenizers library writes pairs
+
+    assert join_bpe_merges(path) is True
+    joined = json.loads(path.read_text())["model"]["merges"]
+    assert joined == [f"{a} {b}" for a, b in pairs]
+    # Reference: the tokenizers library reading both forms of the same file.
+    rebuilt = Tokenizer.from_file(str(path))
+    assert rebuilt.get_vocab() == original.get_vocab()
+    for text in _MERGE_TEXTS:
+        assert rebuilt.encode(text).ids == original.encode(text).ids
+    assert join_bpe_merges(path) is False  # already joined: nothing to do
+
+
+def test_merges_with_a_space_inside_a_part_stay_pairs(tmp_path):
+    from tokenizers import pre_tokenizers
+
+    # Split only at digits: words keep their spaces, so merged parts contain " ".
+    tok = _bpe(pre_tokenizers.Digits())
+    path = tmp_path / "tokenizer.json"
+    tok.save(str(path))
+    before = path.read_text()
+    assert any(" " in part for pair in json.loads(before)["model"]["merges"] for part in pair)
+    assert join_bpe_merges(path) is False
+    assert path.read_text() == before
+
+
+def test_join_merges_leaves_other_models_alone(tmp_path):
+    from tokenizers import Tokenizer, models
+
+    path = tmp_path / "tokenizer.json"
+    Tokenizer(models.WordLevel({"a": 0, "[UNK]": 1}, unk_token="[UNK]")).save(str(path))
+    before = path.read_text()
+    assert join_bpe_merges(path) is False and path.read_text() == before
