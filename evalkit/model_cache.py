@@ -313,7 +313,8 @@ def _write_converted_marker(folder: Path, sha256: str, source_file: str, ref: st
     )
 
 
-# How converted tokenizer.json files write BPE merges (recorded in the marker; see below).
+# How converted tokenizer.json files write BPE merges. The marker records it once a folder's
+# merges have been joined where that is possible (see join_bpe_merges), so the check runs once.
 MERGES_FORM = "joined"
 
 
