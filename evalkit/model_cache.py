@@ -323,7 +323,7 @@ def join_bpe_merges(path: Path) -> bool:
 
     The tokenizers library reads both forms into the same merge table (same pairs, same
     ranks), but splitting strings is cheaper than parsing two-element arrays: Gemma-3's
-    515k merges took 1.7-2.0 s instead of 2.3-2.4 s to build (measured here), most of a
+    515k merges took 1.7-2.4 s instead of 2.3-2.6 s to build (measured here), most of a
     later load of that model. Only possible when no merge part contains a space (the string
     form splits at the space); otherwise, and for other model types, the file is left as it
     is. Returns whether the file was rewritten.

@@ -49,7 +49,8 @@ MAX_AUTO_BATCH = 64      # at 64 questions on SmolLM2-135M: direct 18.5 s agains
                          # worked 54.1 against 53.6 s (the same within noise); measured here
 MEMORY_FRACTION = 0.25   # share of available memory the key/value cache may take
 PREFILL_TOKENS = 1024    # query tokens per prefill forward call (bounds score and activation memory)
-COMPACT_SHARE = 4        # once nobody waits, drop ended rows when they are 1/COMPACT_SHARE of the batch
+REGROUP_SHARE = 4        # batches regroup at a quarter: waiting questions join once that share of the cap
+                         # is free; once nobody waits, ended rows leave once they are that share of the batch
 GROUP_TOKENS = 512       # padded suffix tokens per prefill group: enough rows for efficient products
 
 
@@ -266,7 +267,7 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
     plan = AttentionPlan(model)
     max_suffix = max(len(e) for e in enc) - P
     cap = batch_size or auto_batch_size(model, max_suffix + max_new_tokens, len(prompts))
-    refill_at = max(1, cap // 4)
+    refill_at = max(1, cap // REGROUP_SHARE)
     # Longest suffixes first: neighbours in a prefill then need little padding.
     waiting = deque(sorted(range(len(prompts)), key=lambda i: (-len(enc[i]), i)))
 
@@ -292,7 +293,7 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
                         parts.append((new, keep_new))
                         rows += [new_rows[j] for j in keep_new]
                     slab = combine(parts, max_new_tokens) if rows else None
-                elif ended and not waiting and (ended * COMPACT_SHARE >= len(rows) or not live):
+                elif ended and not waiting and (ended * REGROUP_SHARE >= len(rows) or not live):
                     rows = [rows[j] for j in live]
                     slab = combine([(slab, live)], max_new_tokens) if rows else None
                 if rows:
