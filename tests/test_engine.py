@@ -342,12 +342,14 @@ def test_greedy_pick_equals_argmax_including_exact_ties():
 
 
 def test_transposed_linears_equal_nn_linear_and_restore(llama):
-    from evalkit.backends.linear_order import MAX_TRANSPOSED_ROWS, transposed_linears
+    from evalkit.backends.linear_order import MAX_TRANSPOSED_ROWS, padded_rows, transposed_linears
 
+    # Padded row counts: never fewer rows than asked, never more than 7 extra.
+    assert [padded_rows(r) for r in (1, 2, 3, 4, 5, 8, 9, 31, 32, 33)] == [2, 2, 4, 4, 8, 8, 16, 32, 32, 40]
     model = llama[0]
     lin = next(m for m in model.modules() if type(m) is torch.nn.Linear)
     g = torch.Generator().manual_seed(1)
-    for rows in (1, 5, MAX_TRANSPOSED_ROWS + 1):
+    for rows in (1, 3, 5, 9, 31, MAX_TRANSPOSED_ROWS + 1):  # padded (1-31 rows) and plain
         x = torch.randn(rows, 1, lin.in_features, generator=g)
         want = torch.nn.functional.linear(x, lin.weight, lin.bias)
         head = model.get_output_embeddings()
