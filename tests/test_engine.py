@@ -341,6 +341,32 @@ def test_greedy_pick_equals_argmax_including_exact_ties():
     assert gaps == (top[:, 0] - top[:, 1]).tolist()
 
 
+def test_transposed_output_projection_blocks_give_the_same_bits():
+    """A wide output projection is laid out in rows block by block (linear_order.CONTIGUOUS_BLOCK):
+    every logit is the same dot product as in one unblocked product, so the bits must match."""
+    from evalkit.backends import linear_order
+
+    class Head(torch.nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.out = torch.nn.Linear(24, 3 * linear_order.CONTIGUOUS_BLOCK + 5)  # last block partial
+
+        def get_output_embeddings(self):
+            return self.out
+
+    m = Head()
+    g = torch.Generator().manual_seed(2)
+    for rows in (3, 9, 31):
+        x = torch.randn(rows, 1, 24, generator=g)
+        with linear_order.transposed_linears(m):
+            got = m.out(x)
+        whole = linear_order._product(m.out.weight, m.out.bias, torch.nn.functional.pad(
+            x.reshape(rows, 24), (0, 0, 0, linear_order.padded_rows(rows) - rows)).t())[:, :rows].t()
+        assert got.is_contiguous() and torch.equal(got.reshape(rows, -1), whole)
+        torch.testing.assert_close(got, torch.nn.functional.linear(x, m.out.weight, m.out.bias),
+                                   rtol=1e-5, atol=1e-5)
+
+
 def test_transposed_linears_equal_nn_linear_and_restore(llama):
     from evalkit.backends.linear_order import MAX_TRANSPOSED_ROWS, padded_rows, transposed_linears
 
