@@ -152,24 +152,20 @@ def decode_rate(model, tok, prompts, batch: int, steps: int) -> float:
     import evalkit.backends.engine as engine
 
     saved_eos, saved_step = engine.eos_ids, engine._Run.step
-    spent: list[float] = []
-    tokens = [0]
+    timed: list[tuple[int, float]] = []  # (rows, seconds) of each decode step
 
     def timed_step(run, slab, rows):
-        t = time.perf_counter()
-        saved_step(run, slab, rows)
-        spent.append(time.perf_counter() - t)
-        tokens[0] += len(rows)
+        _, t = _clock(lambda: saved_step(run, slab, rows))
+        timed.append((len(rows), t))
 
     engine.eos_ids = lambda model, tokenizer: set()
     engine._Run.step = timed_step
     best = 0.0
     try:
         for _ in range(2):
-            spent.clear()
-            tokens[0] = 0
+            timed.clear()
             greedy_generate(model, tok, prompts, max_new_tokens=steps, batch_size=batch, reuse_prefix=True)
-            best = max(best, tokens[0] / max(1e-9, sum(spent)))
+            best = max(best, sum(r for r, _ in timed) / max(1e-9, sum(t for _, t in timed)))
     finally:
         engine.eos_ids, engine._Run.step = saved_eos, saved_step
     return best
