@@ -19,7 +19,7 @@ import pytest
 import torch
 
 from evalkit.errors import ModelError
-from evalkit.model_cache import WheelPart, converted_dir, join_bpe_merges
+from evalkit.model_cache import TOKENIZER_FORM, WheelPart, compact_bpe_tokenizer, converted_dir
 from evalkit.models import PACKAGED_MODELS, PackagedModel, fetch, list_models, load, resolve
 from tests.tiny import SPECIAL_TOKENS, build_tiny_gguf, build_tiny_model
 
@@ -444,9 +444,10 @@ def test_gguf_load_converts_once_then_reads_the_cache(cache, tiny_gguf, tiny_ggu
     assert marker["source_sha256"] == sha and marker["source_file"] == tiny_gguf.name
     assert (conv / "model.safetensors").is_file() and (conv / "tokenizer.json").is_file()
     assert [p.name for p in conv.parent.iterdir() if p.name.startswith(".")] == []
-    assert marker["tokenizer_merges"] == "joined"
-    merges = json.loads((conv / "tokenizer.json").read_text())["model"]["merges"]
-    assert merges and all(isinstance(m, str) and m.count(" ") == 1 for m in merges)
+    assert marker["tokenizer_form"] == TOKENIZER_FORM
+    bpe = json.loads((conv / "tokenizer.json").read_text())["model"]
+    assert bpe["merges"] and all(isinstance(m, str) and m.count(" ") == 1 for m in bpe["merges"])
+    assert list(bpe["vocab"]) == sorted(bpe["vocab"], key=lambda t: t.encode("utf-8"))
 
     second = load(str(tiny_gguf), threads=1)
     assert second.from_cache is True
@@ -465,20 +466,27 @@ def test_gguf_load_converts_once_then_reads_the_cache(cache, tiny_gguf, tiny_ggu
         assert second.tokenizer.decode(ref_ids) == text
 
 
-def test_gguf_cache_from_an_earlier_version_gets_joined_merges_once(cache, tiny_gguf):
+def test_gguf_cache_from_an_earlier_version_gets_the_compact_tokenizer_once(cache, tiny_gguf):
     first = load(str(tiny_gguf), threads=1)
     conv = converted_dir(first.source.sha256)
-    # As an earlier evalkit left it: merges as pairs (the tokenizers library's own form).
+    # As an earlier evalkit left it: the tokenizers library's own form (merges as pairs,
+    # vocabulary in id order) and a marker with the older key or none.
     first.tokenizer.backend_tokenizer.save(str(conv / "tokenizer.json"))
+    saved = json.loads((conv / "tokenizer.json").read_text())["model"]
+    assert isinstance(saved["merges"][0], list)
+    assert list(saved["vocab"].values()) == sorted(saved["vocab"].values())
     marker = json.loads((conv / "evalkit-converted.json").read_text())
-    del marker["tokenizer_merges"]
-    (conv / "evalkit-converted.json").write_text(json.dumps(marker))
-    assert isinstance(json.loads((conv / "tokenizer.json").read_text())["model"]["merges"][0], list)
+    del marker["tokenizer_form"]
+    (conv / "evalkit-converted.json").write_text(json.dumps({**marker, "tokenizer_merges": "joined"}))
 
     second = load(str(tiny_gguf), threads=1)
     assert second.from_cache is True
-    assert json.loads((conv / "evalkit-converted.json").read_text())["tokenizer_merges"] == "joined"
-    assert isinstance(json.loads((conv / "tokenizer.json").read_text())["model"]["merges"][0], str)
+    marker = json.loads((conv / "evalkit-converted.json").read_text())
+    assert marker["tokenizer_form"] == TOKENIZER_FORM and "tokenizer_merges" not in marker
+    bpe = json.loads((conv / "tokenizer.json").read_text())["model"]
+    assert isinstance(bpe["merges"][0], str)
+    assert list(bpe["vocab"]) == sorted(bpe["vocab"], key=lambda t: t.encode("utf-8"))
+    assert second.tokenizer.backend_tokenizer.to_str() == first.tokenizer.backend_tokenizer.to_str()
     for text in TEXTS:
         assert second.tokenizer(text)["input_ids"] == first.tokenizer(text)["input_ids"]
 
@@ -534,43 +542,52 @@ def _bpe(pre_tokenizer) -> "tokenizers.Tokenizer":
     return tok
 
 
-def test_joined_merges_build_the_same_tokenizer(tmp_path):
+def test_compact_tokenizer_builds_the_same_tokenizer(tmp_path):
     from tokenizers import Tokenizer, pre_tokenizers
 
     original = _bpe(pre_tokenizers.ByteLevel(add_prefix_space=False))
     path = tmp_path / "tokenizer.json"
     original.save(str(path))
-    pairs = json.loads(path.read_text())["model"]["merges"]
-    assert isinstance(pairs[0], list)  # the tokenizers library writes pairs
+    saved = json.loads(path.read_text())["model"]
+    pairs = saved["merges"]
+    assert isinstance(pairs[0], list)  # the tokenizers library writes pairs, vocabulary in id order
+    assert list(saved["vocab"].values()) == sorted(saved["vocab"].values())
 
-    assert join_bpe_merges(path) is True
-    joined = json.loads(path.read_text())["model"]["merges"]
-    assert joined == [f"{a} {b}" for a, b in pairs]
-    # Reference: the tokenizers library reading both forms of the same file.
+    assert compact_bpe_tokenizer(path) is True
+    compact = json.loads(path.read_text())["model"]
+    assert compact["merges"] == [f"{a} {b}" for a, b in pairs]
+    assert compact["vocab"] == saved["vocab"]  # same entries ...
+    assert list(compact["vocab"]) == sorted(saved["vocab"], key=lambda t: t.encode("utf-8"))  # ... byte order
+    assert list(compact["vocab"]) != list(saved["vocab"])
+    # Reference: the tokenizers library reading both forms of the same file and writing
+    # what it built; its own serialization covers vocabulary, merge ranks and the pipeline.
     rebuilt = Tokenizer.from_file(str(path))
-    assert rebuilt.get_vocab() == original.get_vocab()
+    assert rebuilt.to_str() == original.to_str()
     for text in _MERGE_TEXTS:
         assert rebuilt.encode(text).ids == original.encode(text).ids
-    assert join_bpe_merges(path) is False  # already joined: nothing to do
+    assert compact_bpe_tokenizer(path) is False  # already compact: nothing to do
 
 
 def test_merges_with_a_space_inside_a_part_stay_pairs(tmp_path):
-    from tokenizers import pre_tokenizers
+    from tokenizers import Tokenizer, pre_tokenizers
 
     # Split only at digits: words keep their spaces, so merged parts contain " ".
     tok = _bpe(pre_tokenizers.Digits())
     path = tmp_path / "tokenizer.json"
     tok.save(str(path))
-    before = path.read_text()
-    assert any(" " in part for pair in json.loads(before)["model"]["merges"] for part in pair)
-    assert join_bpe_merges(path) is False
-    assert path.read_text() == before
+    before = json.loads(path.read_text())["model"]
+    assert any(" " in part for pair in before["merges"] for part in pair)
+    assert compact_bpe_tokenizer(path) is True  # the vocabulary is still put in byte order
+    after = json.loads(path.read_text())["model"]
+    assert after["merges"] == before["merges"]
+    assert list(after["vocab"]) == sorted(before["vocab"], key=lambda t: t.encode("utf-8"))
+    assert Tokenizer.from_file(str(path)).to_str() == tok.to_str()
 
 
-def test_join_merges_leaves_other_models_alone(tmp_path):
+def test_compact_tokenizer_leaves_other_models_alone(tmp_path):
     from tokenizers import Tokenizer, models
 
     path = tmp_path / "tokenizer.json"
     Tokenizer(models.WordLevel({"a": 0, "[UNK]": 1}, unk_token="[UNK]")).save(str(path))
     before = path.read_text()
-    assert join_bpe_merges(path) is False and path.read_text() == before
+    assert compact_bpe_tokenizer(path) is False and path.read_text() == before
