@@ -149,11 +149,19 @@ def test_cut_follows_plain_string_search(llama, llama_case):
 
 @pytest.mark.parametrize("batch_size", [1, 3, 8])
 @pytest.mark.parametrize("reuse_prefix", [True, False])
-def test_engine_equals_reference(llama, llama_case, batch_size, reuse_prefix):
+@pytest.mark.parametrize("pack", [True, False], ids=["packed", "unpacked"])
+def test_engine_equals_reference(llama, llama_case, batch_size, reuse_prefix, pack, monkeypatch):
+    from evalkit.backends import linear_order
+
+    if pack and not linear_order.packing_available():
+        pytest.skip("this torch has no oneDNN packed linear operators")
     model, tok = llama
     stop, ref = llama_case
+    calls = []
+    monkeypatch.setattr(engine_mod, "should_pack", lambda m, available: calls.append(available) or pack)
     got = greedy_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, stop=stop,
                           batch_size=batch_size, reuse_prefix=reuse_prefix)
+    assert calls and calls[0] > 0  # asked once per call, with the memory available
     assert _compare(got, ref) <= 1
 
 
@@ -358,7 +366,7 @@ def test_transposed_output_projection_blocks_give_the_same_bits():
     g = torch.Generator().manual_seed(2)
     for rows in (3, 9, 31):
         x = torch.randn(rows, 1, 24, generator=g)
-        with linear_order.transposed_linears(m):
+        with linear_order.engine_linears(m):
             got = m.out(x)
         whole = linear_order._product(m.out.weight, m.out.bias, torch.nn.functional.pad(
             x.reshape(rows, 24), (0, 0, 0, linear_order.padded_rows(rows) - rows)).t())[:, :rows].t()
@@ -367,8 +375,66 @@ def test_transposed_output_projection_blocks_give_the_same_bits():
                                    rtol=1e-5, atol=1e-5)
 
 
+def test_packed_linears_equal_nn_linear_and_restore(llama):
+    from evalkit.backends import linear_order
+
+    if not linear_order.packing_available():
+        pytest.skip("this torch has no oneDNN packed linear operators")
+    model = llama[0]
+    lin = next(m for m in model.modules() if type(m) is torch.nn.Linear)
+    head = model.get_output_embeddings()
+    g = torch.Generator().manual_seed(3)
+    for rows in (1, 3, 9, 31, 300):
+        x = torch.randn(rows, 1, lin.in_features, generator=g)
+        h = torch.randn(rows, 1, head.in_features, generator=g)
+        with linear_order.engine_linears(model, pack=True) as n:
+            assert n > 0 and "forward" in vars(lin)
+            got, logits = lin(x), head(h)
+        assert got.shape == x.shape[:-1] + (lin.out_features,)
+        # Reference: torch's own nn.Linear (MKL) on the same weights; same sums, other order.
+        torch.testing.assert_close(got, torch.nn.functional.linear(x, lin.weight, lin.bias), rtol=1e-5, atol=1e-5)
+        torch.testing.assert_close(logits, torch.nn.functional.linear(h, head.weight, head.bias),
+                                   rtol=1e-5, atol=1e-5)
+        assert logits.is_contiguous()
+    assert "forward" not in vars(lin) and "forward" not in vars(head)
+
+
+def test_packed_weight_is_kept_and_packed_again_when_the_weight_changes():
+    from evalkit.backends import linear_order
+
+    if not linear_order.packing_available():
+        pytest.skip("this torch has no oneDNN packed linear operators")
+    lin = torch.nn.Linear(16, 40)
+    first = linear_order.packed_weight(lin)
+    assert linear_order.packed_weight(lin) is first  # made once
+    with torch.no_grad():
+        lin.weight.mul_(-2.0)  # changed in place: its version counter moves
+    again = linear_order.packed_weight(lin)
+    assert again is not first
+    x = torch.randn(5, 16)
+    with linear_order.engine_linears(lin, pack=True):
+        got = lin(x)
+    torch.testing.assert_close(got, torch.nn.functional.linear(x, lin.weight, lin.bias), rtol=1e-5, atol=1e-5)
+    with torch.no_grad():
+        lin.weight = torch.nn.Parameter(torch.randn(40, 16))  # replaced: another storage
+    assert linear_order.packed_weight(lin) is not again
+
+
+def test_should_pack_only_float32_that_fits_in_memory(llama):
+    from evalkit.backends import linear_order
+
+    if not linear_order.packing_available():
+        pytest.skip("this torch has no oneDNN packed linear operators")
+    model = llama[0]
+    fresh = AutoModelForCausalLM.from_config(model.config).eval()  # nothing packed for it yet
+    weights = sum(m.weight.nbytes for m in fresh.modules() if type(m) is torch.nn.Linear)
+    assert linear_order.should_pack(fresh, available_bytes=4 * weights)
+    assert not linear_order.should_pack(fresh, available_bytes=2 * weights)  # copies would take half
+    assert not linear_order.should_pack(fresh.to(torch.bfloat16), available_bytes=1 << 40)
+
+
 def test_transposed_linears_equal_nn_linear_and_restore(llama):
-    from evalkit.backends.linear_order import MAX_TRANSPOSED_ROWS, padded_rows, transposed_linears
+    from evalkit.backends.linear_order import MAX_TRANSPOSED_ROWS, engine_linears, padded_rows
 
     # Padded row counts: never fewer rows than asked, never more than 7 extra.
     assert [padded_rows(r) for r in (1, 2, 3, 4, 5, 8, 9, 31, 32, 33)] == [2, 2, 4, 4, 8, 8, 16, 32, 32, 40]
@@ -379,7 +445,7 @@ def test_transposed_linears_equal_nn_linear_and_restore(llama):
         x = torch.randn(rows, 1, lin.in_features, generator=g)
         want = torch.nn.functional.linear(x, lin.weight, lin.bias)
         head = model.get_output_embeddings()
-        with transposed_linears(model) as n:
+        with engine_linears(model) as n:
             assert n > 0 and "forward" in vars(lin)
             got = lin(x)
             logits = head(torch.randn(rows, 1, head.in_features, generator=g))

@@ -14,8 +14,9 @@ How a call runs:
    similar length, so little padding is computed) and merged into
    the running batch in the freed rows; once nobody waits, ended rows are dropped likewise.
    (Ended rows run along until then; their tokens are ignored.)
-4. Linear layers run as ``W @ x.T`` while the call lasts (:mod:`evalkit.backends.linear_order`):
-   faster for the few-row products of decoding on MKL.
+4. While the call lasts, float32 linear layers run through oneDNN on packed copies of their
+   weights, made once per model where memory allows; otherwise as ``W @ x.T``, faster for the
+   few-row products of decoding on MKL (:mod:`evalkit.backends.linear_order`).
 
 Results equal plain one-at-a-time ``generate`` (:func:`evalkit.backends.reference.reference_generate`)
 except at ties: float32 sums taken in another order differ by ~1e-5, which can swap two
@@ -35,7 +36,7 @@ import torch
 from ..errors import BackendError
 from .base import TIE_MARGIN
 from .kvslab import ATTENTION_NAME, AttentionPlan, Slab, combine
-from .linear_order import transposed_linears
+from .linear_order import engine_linears, should_pack
 from .stops import StopWatcher, settle
 
 __all__ = ["Generation", "greedy_generate", "common_prefix_length", "eos_ids", "auto_batch_size",
@@ -276,7 +277,7 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
     # Selected only while this call runs: the model object stays as the caller loaded it.
     model.config._attn_implementation = ATTENTION_NAME
     try:
-        with torch.inference_mode(), transposed_linears(model):
+        with torch.inference_mode(), engine_linears(model, pack=should_pack(model, _mem_available())):
             t0 = time.perf_counter()
             prefix_kv = Slab.for_prefix(model, plan, enc[0][:P], PREFILL_TOKENS)
             run.shared_seconds = (time.perf_counter() - t0) / len(prompts)
