@@ -416,8 +416,14 @@ def test_packed_weight_is_kept_and_packed_again_when_the_weight_changes():
         got = lin(x)
     torch.testing.assert_close(got, torch.nn.functional.linear(x, lin.weight, lin.bias), rtol=1e-5, atol=1e-5)
     with torch.no_grad():
-        lin.weight = torch.nn.Parameter(torch.randn(40, 16))  # replaced: another storage
-    assert linear_order.packed_weight(lin) is not again
+        lin.weight = torch.nn.Parameter(torch.randn(40, 16))  # replaced by another tensor
+    third = linear_order.packed_weight(lin)
+    assert third is not again
+    lin.weight.data = torch.randn(40, 16)  # same tensor object, new data
+    assert linear_order.packed_weight(lin) is not third
+    with linear_order.engine_linears(lin, pack=True):
+        got = lin(x)
+    torch.testing.assert_close(got, torch.nn.functional.linear(x, lin.weight, lin.bias), rtol=1e-5, atol=1e-5)
 
 
 def test_should_pack_only_float32_that_fits_in_memory(llama):

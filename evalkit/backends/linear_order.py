@@ -51,7 +51,8 @@ PACK_HINT_ROWS = 512       # rows oneDNN lays the packed weight out for; measure
                            # as fast as packing for the actual row count at 2-128 rows, faster at 448
 PACK_MEMORY_FRACTION = 0.25  # pack only when the packed copies take at most this share of available memory
 
-_packed: "weakref.WeakKeyDictionary[nn.Linear, tuple[tuple[int, int], torch.Tensor]]" = weakref.WeakKeyDictionary()
+# module -> ((weakref to its weight, storage address, version), packed copy)
+_packed: "weakref.WeakKeyDictionary[nn.Linear, tuple[tuple, torch.Tensor]]" = weakref.WeakKeyDictionary()
 
 
 def _can_pack(m: nn.Module) -> bool:
@@ -68,17 +69,19 @@ def packing_available() -> bool:
 def packed_weight(m: nn.Linear) -> torch.Tensor:
     """oneDNN's packed copy of ``m.weight``, made once and reused while the weight is unchanged.
 
-    Keyed by the module (weakly: the copy goes with the model) and checked against the weight's
-    storage and version counter, so a weight replaced or changed in place is packed again.
+    Keyed by the module (weakly: the copy goes with the model) and checked against the weight
+    tensor itself, its storage and its version counter, so a weight replaced (even by one that
+    lands at the same address), given new data or changed in place is packed again.
     """
     w = m.weight
-    key = (w.data_ptr(), w._version)
     hit = _packed.get(m)
-    if hit is not None and hit[0] == key:
-        return hit[1]
+    if hit is not None:
+        (ref, ptr, version), packed = hit
+        if ref() is w and ptr == w.data_ptr() and version == w._version:
+            return packed
     with torch.no_grad():
         packed = torch.ops.mkldnn._reorder_linear_weight(w.detach(), PACK_HINT_ROWS)
-    _packed[m] = (key, packed)
+    _packed[m] = ((weakref.ref(w), w.data_ptr(), w._version), packed)
     return packed
 
 
