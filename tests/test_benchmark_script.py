@@ -23,7 +23,7 @@ def test_benchmark_quick_run_prints_every_section(tmp_path):
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr[-2000:]
     out = proc.stdout
-    for heading in ("Machine: memory read", "| style | method |", "| decode batch |",
+    for heading in ("Machine: memory read", "Engine's linear layers:", "| style | method |", "| decode batch |",
                     "| direct shots |", "bfloat16 items/s", "Peak resident memory"):
         assert heading in out, heading
     for style in ("direct", "worked"):
