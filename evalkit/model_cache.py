@@ -350,7 +350,7 @@ def compact_bpe_tokenizer(path: Path) -> bool:
         changed = True
     vocab = model.get("vocab")
     if isinstance(vocab, dict) and vocab:
-        ordered = sorted(vocab, key=lambda token: token.encode("utf-8", "surrogatepass"))
+        ordered = sorted(vocab)  # code-point order is the byte order of the tokens' UTF-8
         if ordered != list(vocab):
             model["vocab"] = {token: vocab[token] for token in ordered}
             changed = True
