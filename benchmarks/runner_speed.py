@@ -179,7 +179,7 @@ def linear_layers(model) -> str:
 
     if not linear_order.should_pack(model, _mem_available()):
         return "Engine's linear layers: `W @ x.T` through MKL (oneDNN packing unavailable or short of memory)."
-    layers = [m for m in model.modules() if linear_order._can_pack(m)]
+    layers = linear_order.packable_linears(model)
     _, t = _clock(lambda: [linear_order.packed_weight(m) for m in layers])
     mb = sum(m.weight.nbytes for m in layers) / 1e6
     return (f"Engine's linear layers: oneDNN on packed float32 weights ({len(layers)} layers, "

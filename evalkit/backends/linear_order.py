@@ -39,7 +39,8 @@ import weakref
 import torch
 from torch import nn
 
-__all__ = ["engine_linears", "MAX_TRANSPOSED_ROWS", "packed_weight", "padded_rows", "should_pack"]
+__all__ = ["engine_linears", "MAX_TRANSPOSED_ROWS", "packable_linears", "packed_weight", "padded_rows",
+           "should_pack"]
 
 MAX_TRANSPOSED_ROWS = 256  # measured crossover: at 512 rows and more nn.Linear's own form was faster
 CONTIGUOUS_BLOCK = 2048    # output rows per block when a product must come out laid out in rows (logits):
@@ -57,6 +58,11 @@ _packed: "weakref.WeakKeyDictionary[nn.Linear, tuple[tuple, torch.Tensor]]" = we
 
 def _can_pack(m: nn.Module) -> bool:
     return type(m) is nn.Linear and m.weight.dtype == torch.float32 and m.weight.device.type == "cpu"
+
+
+def packable_linears(model: nn.Module) -> list[nn.Linear]:
+    """The layers of ``model`` that get packed weights: plain float32 ``nn.Linear`` on the CPU."""
+    return [m for m in model.modules() if _can_pack(m)]
 
 
 def packing_available() -> bool:
@@ -93,7 +99,7 @@ def should_pack(model: nn.Module, available_bytes: int) -> bool:
     """
     if not packing_available():
         return False
-    linears = [m for m in model.modules() if _can_pack(m)]
+    linears = packable_linears(model)
     if not linears:
         return False
     todo = sum(m.weight.nbytes for m in linears if m not in _packed)
