@@ -33,5 +33,10 @@ def test_benchmark_quick_run_prints_every_section(tmp_path):
         # Same text as the engine: a/b with b the number of items that method ran.
         same = [line.rstrip(" |").rsplit("|", 1)[1].strip() for line in rows]
         assert all("/" in s for s in same), same
+    # The engine's repeated runs (interleaved with the baselines) are listed, with the spread
+    # of its speed-ups, and checked against each other.
+    for style in ("direct", "worked"):
+        note = [line for line in out.splitlines() if line.startswith(f"- {style}: the engine's runs took")]
+        assert len(note) == 1 and "every run gave the same completions" in note[0], note
     # Either all texts agreed, or each difference is listed with its near-tie count.
     assert "Every completion of every method equals the engine's" in out or "completion(s) differ" in out
