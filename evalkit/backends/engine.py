@@ -17,6 +17,9 @@ How a call runs:
 4. While the call lasts, float32 linear layers run through oneDNN on packed copies of their
    weights, made once per model where memory allows; otherwise as ``W @ x.T``, faster for the
    few-row products of decoding on MKL (:mod:`evalkit.backends.linear_order`).
+5. On glibc the first call of a process sets malloc's mmap and trim thresholds to the values
+   glibc itself settles on later, so megabyte-sized tensors freed in one step are reused in
+   the next rather than unmapped and faulted in again (:mod:`evalkit.backends.allocator`).
 
 Results equal plain one-at-a-time ``generate`` (:func:`evalkit.backends.reference.reference_generate`)
 except at ties: float32 sums taken in another order differ by ~1e-5, which can swap two
@@ -34,6 +37,7 @@ from typing import Callable, Sequence
 import torch
 
 from ..errors import BackendError
+from .allocator import settle_allocator
 from .base import TIE_MARGIN
 from .kvslab import ATTENTION_NAME, AttentionPlan, Slab, combine
 from .linear_order import engine_linears, should_pack
@@ -272,6 +276,7 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
     # Longest suffixes first: neighbours in a prefill then need little padding.
     waiting = deque(sorted(range(len(prompts)), key=lambda i: (-len(enc[i]), i)))
 
+    settle_allocator()  # once per process: large freed tensors stay with it (see .allocator)
     was_training, attn = model.training, model.config._attn_implementation
     model.eval()
     # Selected only while this call runs: the model object stays as the caller loaded it.
