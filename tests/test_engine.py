@@ -460,3 +460,40 @@ def test_transposed_linears_equal_nn_linear_and_restore(llama):
         assert logits.is_contiguous()  # the vocabulary scan wants the logits laid out in rows
     assert "forward" not in vars(lin) and "forward" not in vars(head)
     assert torch.equal(lin(x), torch.nn.functional.linear(x, lin.weight, lin.bias))  # nn.Linear's own again
+
+
+def test_one_row_product_splits_by_thread_and_equals_nn_linear(llama):
+    """One row (batch-1 decode) is computed as one slice of the weight's output rows per thread
+    (linear_order.one_row); checked against torch's own nn.Linear on the same weights."""
+    from evalkit.backends import linear_order
+
+    before = torch.get_num_threads()
+    g = torch.Generator().manual_seed(4)
+    try:
+        torch.set_num_threads(2)
+        for out, k, bias in ((40, 24, True), (192, 576, False), (1536, 576, False), (576, 1536, True)):
+            w, b, x = torch.randn(out, k, generator=g), torch.randn(out, generator=g), torch.randn(k, generator=g)
+            got = linear_order.one_row(w, b if bias else None, x)
+            assert got.shape == (out,) and got.is_contiguous()
+            torch.testing.assert_close(got, torch.nn.functional.linear(x, w, b if bias else None),
+                                       rtol=1e-5, atol=1e-4)
+        w = torch.randn(41, 24, generator=g)
+        assert linear_order.one_row(w, None, torch.randn(24)) is None           # 41 rows: no even split
+        assert linear_order.one_row(w[:40].t().contiguous().t(), None, torch.randn(24)) is None  # not contiguous
+        model = llama[0]
+        lin = next(m for m in model.modules() if type(m) is torch.nn.Linear)
+        head = model.get_output_embeddings()
+        x = torch.randn(1, 1, lin.in_features, generator=g)
+        h = torch.randn(1, 1, head.in_features, generator=g)
+        for pack in (False, True):
+            with linear_order.engine_linears(model, pack=pack):
+                got, logits = lin(x), head(h)
+            # The engine's one-row path is this function, bit for bit.
+            assert torch.equal(got.reshape(-1), linear_order.one_row(lin.weight, lin.bias, x.reshape(-1)))
+            assert got.shape == (1, 1, lin.out_features) and logits.is_contiguous()
+            torch.testing.assert_close(logits, torch.nn.functional.linear(h, head.weight, head.bias),
+                                       rtol=1e-5, atol=1e-4)
+        torch.set_num_threads(1)
+        assert linear_order.one_row(lin.weight, lin.bias, x.reshape(-1)) is None  # nothing to split over
+    finally:
+        torch.set_num_threads(before)

@@ -64,3 +64,6 @@ def test_engine_equals_generate_on_smollm2(smollm2, worked):
     got = greedy_generate(model, tok, prompts, max_new_tokens=max_new, stop=stop, batch_size=4)
     assert _check(got, ref) <= 1
     assert all(g.new_tokens >= 1 and g.text.strip() for g in got)
+    # One row at a time: every step takes the one-row products (linear_order.one_row).
+    alone = greedy_generate(model, tok, prompts[:3], max_new_tokens=max_new, stop=stop, batch_size=1)
+    assert _check(alone, ref[:3]) <= 1

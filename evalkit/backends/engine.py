@@ -16,7 +16,8 @@ How a call runs:
    (Ended rows run along until then; their tokens are ignored.)
 4. While the call lasts, float32 linear layers run through oneDNN on packed copies of their
    weights, made once per model where memory allows; otherwise as ``W @ x.T``, faster for the
-   few-row products of decoding on MKL (:mod:`evalkit.backends.linear_order`).
+   few-row products of decoding on MKL; a single row as one slice of the weight per thread
+   (:mod:`evalkit.backends.linear_order`).
 5. On glibc the first call of a process sets malloc's mmap and trim thresholds to the values
    glibc itself settles on later, so megabyte-sized tensors freed in one step are reused in
    the next rather than unmapped and faulted in again (:mod:`evalkit.backends.allocator`).
