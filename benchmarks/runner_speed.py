@@ -204,6 +204,11 @@ def second_loads() -> list[str]:
     return lines
 
 
+def _peak_mb() -> float:
+    """This process's peak resident memory so far, in MB (Linux reports kilobytes)."""
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
 def main(argv=None) -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--questions", type=int, default=64, help="questions per style (default 64)")
@@ -238,6 +243,7 @@ def main(argv=None) -> None:
     batched_generate(model, tok, warm, 2)
     f32_texts, differ_notes = {}, []
     engine_notes = []
+    peaks: list[tuple[str, float]] = []  # the process's peak so far, after each part: where it was reached
     for style, (shots, max_new) in STYLES.items():
         prompts = build_prompts(tok, style, shots, n)
 
@@ -282,6 +288,7 @@ def main(argv=None) -> None:
                 f"{spread(n / t_b)} over batched `generate`; "
                 + ("every run gave the same completions." if not unstable else
                    f"{unstable} completion(s) differed between runs (a bug: the engine is deterministic)."))
+        peaks.append((f"{style} timings", _peak_mb()))
     lines.append("")
     if engine_notes:
         lines += engine_notes + [""]
@@ -310,6 +317,7 @@ def main(argv=None) -> None:
                      f"{100 * rate * 2 * n_params / (gflops * 1e9):.1f}% | {100 * rate / bw_bound:.1f}% |")
     lines += ["", f"Compute bound: 2 x {n_params / 1e6:.3g}M parameters FLOPs per token at the matmul rate; "
               f"bandwidth bound: {bw_bound:.1f} tokens/s ({weight_bytes / 1e6:.3g} MB of weights read per token).", ""]
+    peaks.append(("decode table", _peak_mb()))
 
     lines += ["| direct shots | questions | seconds per item |", "| ---: | ---: | ---: |"]
     for shots in ((2, 8) if args.quick else (2, 4, 8)):
@@ -318,6 +326,7 @@ def main(argv=None) -> None:
             _, t = _clock(lambda: greedy_generate(model, tok, prompts, max_new_tokens=24, stop=STOP))
             lines.append(f"| {shots} | {q} | {t / q:.3f} |")
     lines.append("")
+    peaks.append(("shots table", _peak_mb()))
 
     bf = model.to(torch.bfloat16)
     lines += ["| style | bfloat16 items/s | completions changed vs float32 |", "| --- | ---: | ---: |"]
@@ -327,8 +336,9 @@ def main(argv=None) -> None:
         got, t = _clock(lambda: greedy_generate(bf, tok, prompts, max_new_tokens=max_new, stop=STOP))
         changed = sum(g.text != f for g, f in zip(got, f32_texts[style]))
         lines.append(f"| {style} | {n_bf / t:.2f} | {changed}/{n_bf} |")
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    lines += ["", f"Peak resident memory: {peak:.0f} MB.", ""]
+    peaks.append(("bfloat16", _peak_mb()))
+    lines += ["", f"Peak resident memory: {peaks[-1][1]:.0f} MB (the peak so far after each part: "
+              + ", ".join(f"{part} {mb:.0f}" for part, mb in peaks) + ").", ""]
     if not args.model_folder and not args.quick:
         del bf, model
         lines += second_loads() + [""]

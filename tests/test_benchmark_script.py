@@ -7,6 +7,7 @@ compared with the engine's (plain and batched ``generate`` are the outside refer
 
 from __future__ import annotations
 
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -38,5 +39,11 @@ def test_benchmark_quick_run_prints_every_section(tmp_path):
     for style in ("direct", "worked"):
         note = [line for line in out.splitlines() if line.startswith(f"- {style}: the engine's runs took")]
         assert len(note) == 1 and "every run gave the same completions" in note[0], note
+    # Peak memory is traced part by part; the figures never fall (it is the peak so far).
+    peak = next(line for line in out.splitlines() if line.startswith("Peak resident memory"))
+    parts = re.findall(r"(direct timings|worked timings|decode table|shots table|bfloat16) (\d+)", peak)
+    assert [p for p, _ in parts] == ["direct timings", "worked timings", "decode table", "shots table", "bfloat16"]
+    mbs = [int(mb) for _, mb in parts]
+    assert mbs == sorted(mbs) and mbs[0] > 0
     # Either all texts agreed, or each difference is listed with its near-tie count.
     assert "Every completion of every method equals the engine's" in out or "completion(s) differ" in out
