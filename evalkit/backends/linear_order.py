@@ -149,6 +149,7 @@ def one_row(weight: torch.Tensor, bias: torch.Tensor | None, x: torch.Tensor) ->
 
 
 def _one_row_or_none(self: nn.Linear, x: torch.Tensor) -> torch.Tensor | None:
+    """:func:`one_row` where ``x`` holds exactly one row of the weight's dtype, else None."""
     k = x.shape[-1]
     if x.numel() != k or x.dtype != self.weight.dtype:
         return None
@@ -179,7 +180,7 @@ def _forward(self: nn.Linear, x: torch.Tensor, contiguous: bool = False) -> torc
     rows = x.numel() // k if k else 0
     if rows == 0 or rows > MAX_TRANSPOSED_ROWS or x.dtype != self.weight.dtype:
         return nn.functional.linear(x, self.weight, self.bias)
-    y = _one_row_or_none(self, x) if rows == 1 else None
+    y = _one_row_or_none(self, x)
     if y is not None:
         return y
     flat = x.reshape(rows, k)
