@@ -150,18 +150,23 @@ def test_cut_follows_plain_string_search(llama, llama_case):
 @pytest.mark.parametrize("batch_size", [1, 3, 8])
 @pytest.mark.parametrize("reuse_prefix", [True, False])
 @pytest.mark.parametrize("pack", [True, False], ids=["packed", "unpacked"])
-def test_engine_equals_reference(llama, llama_case, batch_size, reuse_prefix, pack, monkeypatch):
-    from evalkit.backends import linear_order
+@pytest.mark.parametrize("direct_pass", [True, False], ids=["llama_pass", "model_call"])
+def test_engine_equals_reference(llama, llama_case, batch_size, reuse_prefix, pack, direct_pass,
+                                 monkeypatch):
+    from evalkit.backends import linear_order, llama_pass
 
     if pack and not linear_order.packing_available():
         pytest.skip("this torch has no oneDNN packed linear operators")
     model, tok = llama
     stop, ref = llama_case
-    calls = []
+    calls, used = [], []
     monkeypatch.setattr(engine_mod, "should_pack", lambda m, available: calls.append(available) or pack)
+    applies = llama_pass.applies
+    monkeypatch.setattr(llama_pass, "applies", lambda m: used.append(applies(m)) or (direct_pass and used[-1]))
     got = greedy_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, stop=stop,
                           batch_size=batch_size, reuse_prefix=reuse_prefix)
     assert calls and calls[0] > 0  # asked once per call, with the memory available
+    assert used and all(used)  # the tiny llama qualifies for the direct pass at every forward call
     assert _compare(got, ref) <= 1
 
 
@@ -497,3 +502,77 @@ def test_one_row_product_splits_by_thread_and_equals_nn_linear(llama):
         assert linear_order.one_row(lin.weight, lin.bias, x.reshape(-1)) is None  # nothing to split over
     finally:
         torch.set_num_threads(before)
+
+
+def _slab_logits(model, tok, direct: bool, monkeypatch):
+    """Prefix, one padded prefill group and three decode steps through Slab.extend, with the
+    direct llama pass or with model(...): every logit and every cached key/value."""
+    from evalkit.backends import llama_pass
+    from evalkit.backends.kvslab import AttentionPlan
+
+    monkeypatch.setattr(llama_pass, "applies", lambda m: direct)
+    enc = tok(PROMPTS[:4], add_special_tokens=False)["input_ids"]
+    P = common_prefix_length(enc)
+    plan, out = AttentionPlan(model), []
+    saved = model.config._attn_implementation
+    model.config._attn_implementation = ATTENTION_NAME
+    try:
+        with torch.inference_mode():
+            prefix = Slab.for_prefix(model, plan, enc[0][:P], 7)  # several chunks
+            sufs = [e[P:] for e in enc]
+            S = max(len(s) for s in sufs)
+            slab = Slab(plan, len(sufs), S + 3, prefix, "cpu")
+            ids = torch.zeros((len(sufs), S), dtype=torch.long)
+            pos = torch.zeros((len(sufs), S), dtype=torch.long)
+            real = torch.zeros((len(sufs), S), dtype=torch.bool)
+            for j, s in enumerate(sufs):
+                ids[j, S - len(s):] = torch.tensor(s)
+                pos[j, S - len(s):] = torch.arange(P, P + len(s))
+                real[j, S - len(s):] = True
+            logits = slab.extend(model, ids, pos, real)
+            out.append(logits)
+            for step in range(3):
+                nxt = logits.argmax(-1)[:, None]
+                logits = slab.extend(model, nxt, pos[:, -1:] + step + 1)
+                out.append(logits)
+            out += [t for k, v in prefix for t in (k, v)]
+            out += [t for layer in slab.layers for t in (layer.keys, layer.values)]
+    finally:
+        model.config._attn_implementation = saved
+    return out
+
+
+def test_llama_pass_gives_the_bits_of_the_model_call(llama, monkeypatch):
+    # Outside reference: transformers' own LlamaForCausalLM.forward, through the same cache.
+    model, tok = llama
+    direct = _slab_logits(model, tok, True, monkeypatch)
+    called = _slab_logits(model, tok, False, monkeypatch)
+    assert len(direct) == len(called)
+    for a, b in zip(direct, called):
+        assert torch.equal(a, b)
+
+
+def test_llama_pass_only_where_it_computes_the_same(llama, tmp_path):
+    from evalkit.backends import llama_pass
+
+    model, _ = llama
+    saved = model.config._attn_implementation
+    model.config._attn_implementation = ATTENTION_NAME
+    try:
+        assert llama_pass.applies(model)
+        handle = model.model.layers[0].register_forward_hook(lambda *a: None)
+        assert not llama_pass.applies(model)  # that hook would be skipped
+        handle.remove()
+        handle = model.model.layers[0].mlp.register_forward_hook(lambda *a: None)
+        assert llama_pass.applies(model)  # a called submodule: its hook still runs
+        handle.remove()
+        model.train()
+        assert not llama_pass.applies(model)
+        model.eval()
+        assert llama_pass.applies(model)
+    finally:
+        model.config._attn_implementation = saved
+    assert not llama_pass.applies(model)  # another attention selected
+    gemma, _ = _load(build_tiny_model(tmp_path, arch="gemma3", seed=0))
+    gemma.config._attn_implementation = ATTENTION_NAME
+    assert not llama_pass.applies(gemma)

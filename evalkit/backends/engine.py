@@ -18,7 +18,10 @@ How a call runs:
    weights, made once per model where memory allows; otherwise as ``W @ x.T``, faster for the
    few-row products of decoding on MKL; a single row as one slice of the weight per thread
    (:mod:`evalkit.backends.linear_order`).
-5. On glibc the first call of a process sets malloc's mmap and trim thresholds to the values
+5. Llama-architecture models run their submodules directly (:mod:`evalkit.backends.llama_pass`):
+   the same operations and bits as ``model(...)``, without transformers' per-call wrappers,
+   which cost milliseconds per decode step at any batch size; other models run ``model(...)``.
+6. On glibc the first call of a process sets malloc's mmap and trim thresholds to the values
    glibc itself settles on later, so megabyte-sized tensors freed in one step are reused in
    the next rather than unmapped and faulted in again (:mod:`evalkit.backends.allocator`).
 

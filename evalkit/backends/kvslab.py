@@ -27,6 +27,7 @@ import torch
 from transformers.cache_utils import Cache, DynamicLayer
 
 from ..errors import BackendError
+from . import llama_pass
 from .split_attention import ATTENTION_NAME, active_slab
 
 __all__ = ["Slab", "AttentionPlan", "combine", "ATTENTION_NAME"]
@@ -154,15 +155,19 @@ class Slab(Cache):
         self.kv_pos[:, self.n:self.n + T] = seen
         token = active_slab.set(self)
         try:
-            out = model(input_ids=ids, attention_mask=self._masks(pos, real),
-                        position_ids=pos.clamp(min=0), cache=self, use_cache=True, logits_to_keep=1)
+            mask, at = self._masks(pos, real), pos.clamp(min=0)
+            if llama_pass.applies(model):  # the same numbers without transformers' per-call wrappers
+                logits = llama_pass.last_logits(model, self, ids, mask, at)
+            else:
+                logits = model(input_ids=ids, attention_mask=mask, position_ids=at, cache=self,
+                               use_cache=True, logits_to_keep=1).logits[:, -1, :]
         finally:
             active_slab.reset(token)
         self.n += T
         if any(layer.n != self.n for layer in self.layers):
             raise BackendError("model type not supported by evalkit's engine: its layers do not "
                                "each keep one key/value entry per token (shared or skipped caches)")
-        return out.logits[:, -1, :]
+        return logits
 
     @classmethod
     def for_prefix(cls, model, plan: AttentionPlan, ids: Sequence[int], chunk: int):
