@@ -173,18 +173,74 @@ def test_engine_equals_reference(llama, llama_case, batch_size, reuse_prefix, pa
 def test_batch_refills_and_matches(llama, llama_case, monkeypatch):
     model, tok = llama
     stop, ref = llama_case
-    merges = []
-    real_combine = engine_mod.combine
+    joined, left = [], []  # rows running when new rows joined; rows kept when rows left
+    real_admit, real_retain = Slab.admit, Slab.retain
 
-    def counting(parts, reserve):
-        merges.append(len(parts))
-        return real_combine(parts, reserve)
+    def admit(self, src, keep):
+        joined.append(self.rows)
+        return real_admit(self, src, keep)
 
-    monkeypatch.setattr(engine_mod, "combine", counting)
+    def retain(self, keep):
+        left.append((self.rows, len(keep)))
+        return real_retain(self, keep)
+
+    monkeypatch.setattr(Slab, "admit", admit)
+    monkeypatch.setattr(Slab, "retain", retain)
     got = greedy_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, stop=stop, batch_size=4)
-    # 14 questions through 4 rows: running rows and freshly prefilled ones were merged.
-    assert merges.count(2) >= 2
+    # 14 questions through 4 rows: fresh rows joined running ones, and ended rows left.
+    assert sum(n > 0 for n in joined) >= 2
+    assert any(kept < n for n, kept in left)
     assert _compare(got, ref) <= 1
+
+
+def test_regroup_rules():
+    from evalkit.backends.engine import regroup
+
+    # 64 rows: waiting questions join once 16 rows are free (a quarter), or when none is live.
+    assert regroup(64, 49, 10, 64, full=False) == ""
+    assert regroup(64, 48, 10, 64, full=False) == "join"
+    assert regroup(3, 0, 10, 64, full=False) == "join"
+    assert regroup(0, 0, 10, 64, full=False) == "join"  # the first batch
+    # Nobody waits: ended rows leave once they are a quarter of the batch, or none is live.
+    assert regroup(40, 31, 0, 64, full=False) == ""
+    assert regroup(40, 30, 0, 64, full=False) == "leave"
+    assert regroup(2, 0, 0, 64, full=False) == "leave"
+    assert regroup(40, 40, 0, 64, full=False) == ""
+    # An ended row that has used all its columns leaves at once, waiting or not.
+    assert regroup(64, 63, 10, 64, full=True) == "leave"
+    assert regroup(40, 39, 0, 64, full=True) == "leave"
+
+
+def test_rows_move_down_in_place_and_keep_their_columns():
+    from evalkit.backends.kvslab import _moves
+
+    # Every pattern of kept rows out of 7: applying the block moves in order to a list of
+    # rows gives the kept rows, in order, at the front (the sources are never overwritten
+    # before they are read), and no move overlaps its own source.
+    import itertools
+
+    for r in range(8):
+        for keep in itertools.combinations(range(7), r):
+            data = list(range(7))
+            for dst, src, n in _moves(list(keep)):
+                assert dst < src and (dst + n <= src)
+                data[dst:dst + n] = data[src:src + n]
+            assert data[:len(keep)] == list(keep)
+
+
+def test_later_calls_reuse_the_key_value_memory(llama, llama_case):
+    from evalkit.backends.arena import arena_for, release
+
+    model, tok = llama
+    stop, ref = llama_case
+    release(model)
+    first = greedy_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, stop=stop, batch_size=5)
+    blocks = {use: arena_for(model, use).block.data_ptr() for use in ("prefix", "rows", "prefill")}
+    second = greedy_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, stop=stop, batch_size=5)
+    assert {use: arena_for(model, use).block.data_ptr() for use in blocks} == blocks
+    assert [g.text for g in second] == [g.text for g in first]
+    assert _compare(second, ref) <= 1
+    assert release(model) > 0
 
 
 def test_eos_ends_rows(llama):

@@ -24,6 +24,10 @@ How a call runs:
 6. On glibc the first call of a process sets malloc's mmap and trim thresholds to the values
    glibc itself settles on later, so megabyte-sized tensors freed in one step are reused in
    the next rather than unmapped and faulted in again (:mod:`evalkit.backends.allocator`).
+7. The running batch lives in one slab for the whole call: rows join and leave in place
+   (:mod:`evalkit.backends.kvslab`). Its key/value memory, the prefix's and the prefill
+   groups' come from arenas kept with the model, so the next call reuses pages already in
+   place (:mod:`evalkit.backends.arena`; ``arena.release(model)`` drops them).
 
 Results equal plain one-at-a-time ``generate`` (:func:`evalkit.backends.reference.reference_generate`)
 except at ties: float32 sums taken in another order differ by ~1e-5, which can swap two
@@ -36,19 +40,20 @@ from __future__ import annotations
 import time
 from collections import deque
 from dataclasses import dataclass
-from typing import Callable, Sequence
+from typing import Callable, Iterator, Sequence
 
 import torch
 
 from ..errors import BackendError
 from .allocator import settle_allocator
+from .arena import ALIGN, arena_for
 from .base import TIE_MARGIN
-from .kvslab import ATTENTION_NAME, AttentionPlan, Slab, combine
+from .kvslab import ATTENTION_NAME, AttentionPlan, Slab
 from .linear_order import engine_linears, should_pack
 from .stops import StopWatcher, settle
 
 __all__ = ["Generation", "greedy_generate", "common_prefix_length", "eos_ids", "auto_batch_size",
-           "kv_bytes_per_token", "TIE_MARGIN"]
+           "kv_bytes_per_token", "regroup", "TIE_MARGIN"]
 
 # TIE_MARGIN (from .base, the one threshold evalkit uses): on SmolLM2-135M in float32 the
 # engine's and one-at-a-time generate's per-completion minimum margins differed by at most
@@ -107,6 +112,12 @@ def kv_bytes_per_token(model) -> int:
     return cfg.num_hidden_layers * 2 * heads * head_dim * itemsize
 
 
+def slab_bytes(model, tokens: int) -> int:
+    """Bytes of key/value buffers for ``tokens`` own columns, with room for their alignment."""
+    layers = model.config.get_text_config(decoder=True).num_hidden_layers
+    return tokens * kv_bytes_per_token(model) + 2 * layers * ALIGN
+
+
 def _mem_available() -> int:
     try:
         with open("/proc/meminfo") as f:
@@ -121,9 +132,10 @@ def _mem_available() -> int:
 def auto_batch_size(model, row_tokens: int, n_prompts: int) -> int:
     """Rows per batch from the key/value memory one row needs and the memory available."""
     vocab = model.config.get_text_config(decoder=True).vocab_size
-    # Two slabs coexist while rows are merged; logits come out in float32 plus a copy.
+    # One slab holds every row for the whole call (prefill groups add a small slab of their
+    # own while they are copied in); logits come out in float32 plus a copy.
     # (The shared prefix is held once, outside the rows; row_tokens may leave it out.)
-    per_row = 2 * row_tokens * kv_bytes_per_token(model) + 8 * vocab
+    per_row = row_tokens * kv_bytes_per_token(model) + 8 * vocab
     fit = int(MEMORY_FRACTION * _mem_available()) // max(1, per_row)
     return max(1, min(MAX_AUTO_BATCH, fit, n_prompts))
 
@@ -142,6 +154,24 @@ def greedy_pick(logits: torch.Tensor) -> tuple[list[int], list[float]]:
     if bool((gap == 0).any()):
         best = torch.where(gap == 0, logits.argmax(dim=-1), best)
     return best.tolist(), gap.tolist()
+
+
+def regroup(rows: int, live: int, waiting: int, cap: int, full: bool) -> str:
+    """What the batch does before its next step: "join" (ended rows leave and waiting
+    questions take their places), "leave" (ended rows leave) or "" (step as it is).
+
+    Waiting questions join once a quarter of the cap (``REGROUP_SHARE``) is free, or when no
+    row is live. Once nobody waits, ended rows leave once they are a quarter of the batch, or
+    when no row is live; until then they run along (their tokens are ignored). ``full``: the
+    longest row has used all its columns; only an ended row can (a live row has at most
+    max_new_tokens - 1 generated tokens in the slab), and it leaves at once.
+    """
+    ended = rows - live
+    if waiting and (not live or cap - live >= max(1, cap // REGROUP_SHARE)):
+        return "join"
+    if ended and ((not waiting and (ended * REGROUP_SHARE >= rows or not live)) or full):
+        return "leave"
+    return ""
 
 
 class _Row:
@@ -188,27 +218,29 @@ class _Run:
                                         min_margin=margin, finish=how,
                                         seconds=r.seconds + self.shared_seconds))
 
-    def prefill(self, plan: AttentionPlan, prefix_kv, items: list[int]) -> list[tuple[Slab, list[_Row]]]:
-        """New rows for ``items`` (longest first), in groups of similar suffix length.
+    def prefill(self, plan: AttentionPlan, prefix_kv, items: list[int]) -> Iterator[tuple[Slab, list[_Row]]]:
+        """New rows for ``items`` (longest first), group by group, in groups of similar suffix length.
 
         Each group is padded only to its own longest suffix: one padded block for all items
         would spend a fifth of the prefill on padding at the demo's 38-66-token suffixes.
         Groups stay large enough (``GROUP_TOKENS``) for efficient matrix products.
         """
-        groups, start = [], 0
+        start = 0
         while start < len(items):
             longest = len(self.enc[items[start]]) - self.P
             size = max(1, GROUP_TOKENS // max(1, longest))
-            groups.append(self._prefill_group(plan, prefix_kv, items[start:start + size]))
+            yield self._prefill_group(plan, prefix_kv, items[start:start + size])
             start += size
-        return groups
 
     def _prefill_group(self, plan: AttentionPlan, prefix_kv, items: list[int]) -> tuple[Slab, list[_Row]]:
-        """New rows for ``items``: their suffixes, right-aligned, continuing the shared prefix."""
+        """New rows for ``items``: their suffixes, right-aligned, continuing the shared prefix,
+        in a slab of their own (the running batch copies them in)."""
         t0 = time.perf_counter()
         sufs = [self.enc[i][self.P:] for i in items]
         k, S = len(sufs), max(len(s) for s in sufs)
-        slab = Slab(plan, k, S + self.max_new, prefix_kv, self.device)
+        arena = arena_for(self.model, "prefill")  # the last group's slab has been copied in
+        arena.reset(slab_bytes(self.model, k * S), self.device)
+        slab = Slab(plan, k, S, prefix_kv, self.device, arena=arena)
         ids = torch.full((k, S), self.pad, dtype=torch.long)
         pos = torch.zeros((k, S), dtype=torch.long)
         real = torch.zeros((k, S), dtype=torch.bool)
@@ -220,7 +252,6 @@ class _Run:
         step = max(1, PREFILL_TOKENS // k)
         for a in range(0, S, step):
             logits = slab.extend(self.model, ids[:, a:a + step], pos[:, a:a + step], real[:, a:a + step])
-        slab.tail = [len(s) for s in sufs]
         rows = [_Row(i, len(self.enc[i])) for i in items]
         self.advance(rows, logits, time.perf_counter() - t0)
         return slab, rows
@@ -232,7 +263,6 @@ class _Run:
         pos = torch.tensor([[r.prompt_len + len(r.ids) - 1] for r in rows], dtype=torch.long,
                            device=self.device)
         logits = slab.extend(self.model, ids, pos)
-        slab.tail = [t + 1 for t in slab.tail]
         self.advance(rows, logits, time.perf_counter() - t0)
 
 
@@ -245,8 +275,9 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
     ``batch_size`` overrides the rows decoded together (default: from memory, at most 64);
     ``progress`` is called with the number of items just finished (an increment);
     ``on_result(index, generation)`` fires as each item finishes. While it runs, the model's
-    ``config._attn_implementation`` names the engine's attention (restored afterwards), so
-    one model must not serve another caller at the same time.
+    ``config._attn_implementation`` names the engine's attention (restored afterwards), and
+    the key/value memory is the model's (kept for its next call), so one model must not serve
+    another caller at the same time.
     """
     if max_new_tokens < 1:
         raise BackendError(f"max_new_tokens must be at least 1, got {max_new_tokens}")
@@ -275,8 +306,10 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
     run = _Run(model, tokenizer, enc, P, max_new_tokens, stop, eos, on_done)
     plan = AttentionPlan(model)
     max_suffix = max(len(e) for e in enc) - P
-    cap = batch_size or auto_batch_size(model, max_suffix + max_new_tokens, len(prompts))
-    refill_at = max(1, cap // REGROUP_SHARE)
+    # A row holds its suffix (padded to its prefill group's longest) and the keys and values of
+    # at most max_new_tokens - 1 generated tokens (the last token is never fed back).
+    capacity = max_suffix + max_new_tokens
+    cap = min(batch_size or auto_batch_size(model, capacity, len(prompts)), len(prompts))
     # Longest suffixes first: neighbours in a prefill then need little padding.
     waiting = deque(sorted(range(len(prompts)), key=lambda i: (-len(enc[i]), i)))
 
@@ -288,24 +321,27 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
     try:
         with torch.inference_mode(), engine_linears(model, pack=should_pack(model, _mem_available())):
             t0 = time.perf_counter()
-            prefix_kv = Slab.for_prefix(model, plan, enc[0][:P], PREFILL_TOKENS)
+            arenas = {use: arena_for(model, use) for use in ("prefix", "rows")}
+            arenas["prefix"].reset(slab_bytes(model, P), model.device)
+            arenas["rows"].reset(slab_bytes(model, cap * capacity), model.device)
+            prefix_kv = Slab.for_prefix(model, plan, enc[0][:P], PREFILL_TOKENS, arena=arenas["prefix"])
             run.shared_seconds = (time.perf_counter() - t0) / len(prompts)
-            slab, rows = None, []
+            # One slab for the whole call: rows join and leave in place (see .kvslab).
+            slab = Slab(plan, 0, capacity, prefix_kv, model.device, capacity_rows=cap, arena=arenas["rows"])
+            rows = []
             while waiting or any(not r.done for r in rows):
                 live = [j for j, r in enumerate(rows) if not r.done]
-                ended = len(rows) - len(live)
-                if waiting and (not live or cap - len(live) >= refill_at):
-                    take = [waiting.popleft() for _ in range(min(cap - len(live), len(waiting)))]
-                    parts = [(slab, live)] if live else []
+                move = regroup(len(rows), len(live), len(waiting), cap,
+                               full=bool(rows) and max(slab.tail) >= capacity)
+                if move:
+                    slab.retain(live)
                     rows = [rows[j] for j in live]
+                if move == "join":
+                    take = [waiting.popleft() for _ in range(min(cap - len(live), len(waiting)))]
                     for new, new_rows in run.prefill(plan, prefix_kv, take):
                         keep_new = [j for j, r in enumerate(new_rows) if not r.done]
-                        parts.append((new, keep_new))
+                        slab.admit(new, keep_new)
                         rows += [new_rows[j] for j in keep_new]
-                    slab = combine(parts, max_new_tokens) if rows else None
-                elif ended and not waiting and (ended * REGROUP_SHARE >= len(rows) or not live):
-                    rows = [rows[j] for j in live]
-                    slab = combine([(slab, live)], max_new_tokens) if rows else None
                 if rows:
                     run.step(slab, rows)
     except RuntimeError as e:  # torch errors (shapes, memory) become one backend error
