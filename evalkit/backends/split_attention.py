@@ -82,6 +82,19 @@ def split_attention(module, query, key, value, attention_mask, scaling=None, dro
 _FLASH = getattr(torch.ops.aten, "_scaled_dot_product_flash_attention_for_cpu", None)
 
 
+def _flash(q, k, v, mask, scale):
+    """Output and log-sum-exp of :data:`_FLASH`, its inputs laid out as it needs them.
+
+    The kernel reads each head vector as contiguous: given a query, key or value whose last
+    dimension has another stride, torch 2.13 returns wrong numbers without an error (seen
+    here: a decode step's query, a view of a transposed product, gave outputs of 1e35; torch's
+    fix is pytorch/pytorch#187506). Such inputs are copied first; the public
+    ``scaled_dot_product_attention`` checks this itself and takes another kernel.
+    """
+    q, k, v = (t if t.stride(-1) == 1 else t.contiguous() for t in (q, k, v))
+    return _FLASH(q, k, v, attn_mask=mask, scale=scale)[:2]
+
+
 def _additive(allowed: torch.Tensor, dtype) -> torch.Tensor:
     return torch.zeros(allowed.shape, dtype=dtype, device=allowed.device).masked_fill_(
         ~allowed, float("-inf"))
@@ -100,7 +113,7 @@ def _merged(query, key, value, prefix, attention_mask, scale):
     pmask = None
     if not bool(seen.all()):  # sliding-window layers may hide part of the prefix
         pmask = _additive(seen.expand(B, r, T, P).reshape(1, 1, B * r * T, P), query.dtype)
-    o1, l1 = _FLASH(qp, pk[None], pv[None], attn_mask=pmask, scale=scale)[:2]
+    o1, l1 = _flash(qp, pk[None], pv[None], pmask, scale)
     o1 = o1.reshape(Hkv, B, r * T, D).permute(1, 0, 2, 3)                    # [B, Hkv, rT, D]
     l1 = l1.reshape(Hkv, B, r * T).permute(1, 0, 2)                          # [B, Hkv, rT]
     if pmask is not None:
@@ -112,13 +125,12 @@ def _merged(query, key, value, prefix, attention_mask, scale):
             o1 = o1.masked_fill(hidden[..., None], 0.0)
     q = query.reshape(B, Hkv, r * T, D)
     own = attention_mask[..., P:][:, :, None].expand(B, 1, r, T, L).reshape(B, 1, r * T, L)
-    if T == 1:
-        # One query per row: plain products beat the fused kernel on such tiny problems.
-        s = torch.matmul(q * scale, key.transpose(-1, -2)).masked_fill_(~own, float("-inf")).float()
-        l2 = torch.logsumexp(s, dim=-1)                                      # [B, Hkv, rT]
-        o2 = torch.matmul(torch.exp(s - l2[..., None]).to(query.dtype), value)
-    else:
-        o2, l2 = _FLASH(q, key, value, attn_mask=_additive(own, query.dtype), scale=scale)[:2]
+    # The fused kernel for the own part at decode steps too (one query per row): measured here
+    # on SmolLM2-135M against plain products, softmax and a second product, a decode step at
+    # 4 / 16 / 64 / 128 rows took 46-48 / 69-70 / 147-152 / 242-246 ms against 48-49 / 72-73 /
+    # 153 / 248-254 ms (three runs each, alternated): the plain form spent as long in its
+    # softmax's small element-wise operations as in reading the keys.
+    o2, l2 = _flash(q, key, value, _additive(own, query.dtype), scale)
     w = torch.sigmoid(l1 - l2)[..., None].to(query.dtype)                   # log-sum-exps are float32
     out = o2 + w * (o1 - o2)
     return out.reshape(B, Hq, T, D).transpose(1, 2).contiguous(), None
