@@ -395,19 +395,34 @@ def test_other_architectures_equal_reference(llama, arch):
     assert _compare(got, ref) <= 1
 
 
-def test_greedy_pick_equals_argmax_including_exact_ties():
+@pytest.mark.parametrize("vocab", [1000, 4096, 49152, 1009], ids=["2-blocks", "4-blocks", "smollm2", "prime"])
+def test_greedy_pick_equals_argmax_including_exact_ties(vocab):
     # torch.argmax (what generate's greedy step uses) returns the first maximal index;
-    # greedy_pick must agree everywhere, exact ties included, and report the top-2 gap.
-    g = torch.Generator().manual_seed(0)
-    logits = torch.randn(64, 1000, generator=g)
-    logits[3, 10] = logits[3, 900] = logits[3].max() + 1.0     # exact tie, ids far apart
-    logits[7, :] = 0.0                                          # everything tied
-    logits[9, 998] = logits[9, 999] = 50.0                      # tie at the end of the vocabulary
+    # greedy_pick must agree everywhere, exact ties included, and report the top-2 gap
+    # (torch.topk's values are the reference for the gap). A prime vocabulary has no block
+    # size and takes the whole-row scan.
+    g = torch.Generator().manual_seed(vocab)
+    logits = torch.randn(64, vocab, generator=g)
+    blk = engine_mod.pick_block(vocab)
+    assert (blk is None) == (vocab == 1009)
+    b = blk or 100
+    logits[3, 10] = logits[3, vocab - 100] = logits[3].max() + 1.0  # exact tie, ids far apart
+    logits[7, :] = 0.0                                              # everything tied
+    logits[9, vocab - 2] = logits[9, vocab - 1] = 50.0              # tie at the end of the vocabulary
+    logits[11, b - 1] = logits[11, b] = 40.0                        # tie across a block boundary
+    logits[12, b + 1] = logits[12, b + 5] = 40.0                    # tie inside one block
+    logits[13, 2] = 30.0                                            # second best in the best block...
+    logits[13, 1] = 29.5
+    logits[13, vocab - 1] = 29.75                                   # ...but the runner-up is in another
+    logits[14, vocab - 1] = 30.0                                    # the best in the last block
     toks, gaps = engine_mod.greedy_pick(logits)
     assert toks == logits.argmax(dim=-1).tolist()
-    assert gaps[3] == gaps[7] == gaps[9] == 0.0
+    assert gaps[3] == gaps[7] == gaps[9] == gaps[11] == gaps[12] == 0.0
+    assert gaps[13] == 0.25
     top = torch.topk(logits, 2, dim=-1).values
     assert gaps == (top[:, 0] - top[:, 1]).tolist()
+    one_tok, one_gap = engine_mod.greedy_pick(logits[13:14])  # a single row, as batch-1 decoding has
+    assert (one_tok, one_gap) == ([toks[13]], [0.25])
 
 
 def test_transposed_output_projection_blocks_give_the_same_bits():

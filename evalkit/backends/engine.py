@@ -37,6 +37,7 @@ a step a tie; ``Generation.min_margin`` tells callers how close each completion 
 
 from __future__ import annotations
 
+import functools
 import time
 from collections import deque
 from dataclasses import dataclass
@@ -140,20 +141,51 @@ def auto_batch_size(model, row_tokens: int, n_prompts: int) -> int:
     return max(1, min(MAX_AUTO_BATCH, fit, n_prompts))
 
 
+PICK_BLOCK = 1024  # vocabulary entries per block of the greedy pick (a divisor of the vocabulary near this)
+
+
+@functools.lru_cache(maxsize=None)
+def pick_block(vocab: int) -> int | None:
+    """The block size the greedy pick scans ``vocab`` logits in: the divisor of ``vocab`` in
+    [256, 4096] closest to :data:`PICK_BLOCK`, with at least two blocks; None if there is none."""
+    near = [b for b in range(256, 4097) if vocab % b == 0 and vocab // b >= 2]
+    return min(near, key=lambda b: (abs(b - PICK_BLOCK), b)) if near else None
+
+
 def greedy_pick(logits: torch.Tensor) -> tuple[list[int], list[float]]:
     """Greedy token per row of ``logits`` [B, V] and its top-1 minus top-2 logit gap.
 
-    One top-2 scan gives both. The token is the one ``argmax`` (what ``generate`` uses)
-    picks: on an exact tie topk may list either token first, while argmax takes the lower
-    id, so only then is a second scan paid.
+    The token is the one ``argmax`` (what ``generate`` uses) picks: the first maximal id.
+    The vocabulary is scanned in blocks: each block's maximum (one vectorised pass), the two
+    best blocks, then the top two inside the best block; the second-best logit is the larger
+    of the best block's second and the second block's best. torch's top-k and argmax over a
+    whole row are slow here (SmolLM2's 49,152 logits at 128 rows: 6.1-6.8 ms against 1.0 ms,
+    measured on this machine); the values compared are the same, so the token and gap are too.
+    On an exact tie (between blocks or inside one) top-k may list either id first, so argmax
+    decides those rows.
     """
     logits = logits.float()
-    top, idx = torch.topk(logits, 2, dim=-1)
-    gap = top[:, 0] - top[:, 1]
-    best = idx[:, 0]
-    if bool((gap == 0).any()):
-        best = torch.where(gap == 0, logits.argmax(dim=-1), best)
-    return best.tolist(), gap.tolist()
+    B, V = logits.shape
+    blk = pick_block(V)
+    if blk is None:  # no block size fits this vocabulary: one top-2 scan of the whole row
+        top, idx = torch.topk(logits, 2, dim=-1)
+        gap, best = top[:, 0] - top[:, 1], idx[:, 0]
+        if bool((gap == 0).any()):
+            best = torch.where(gap == 0, logits.argmax(dim=-1), best)
+        return best.tolist(), gap.tolist()
+    blocks = logits.reshape(B, V // blk, blk)
+    block_max = blocks.amax(dim=-1)                                  # [B, V / blk]
+    bv, bi = torch.topk(block_max, 2, dim=-1)
+    block = bi[:, 0]
+    if bool((bv[:, 0] == bv[:, 1]).any()):
+        block = torch.where(bv[:, 0] == bv[:, 1], block_max.argmax(dim=-1), block)
+    inside = blocks[torch.arange(B, device=logits.device), block]   # [B, blk]
+    iv, ii = torch.topk(inside, 2, dim=-1)
+    at = ii[:, 0]
+    if bool((iv[:, 0] == iv[:, 1]).any()):
+        at = torch.where(iv[:, 0] == iv[:, 1], inside.argmax(dim=-1), at)
+    gap = iv[:, 0] - torch.maximum(iv[:, 1], bv[:, 1])
+    return (block * blk + at).tolist(), gap.tolist()
 
 
 def regroup(rows: int, live: int, waiting: int, cap: int, full: bool) -> str:
