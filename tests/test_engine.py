@@ -170,6 +170,22 @@ def test_engine_equals_reference(llama, llama_case, batch_size, reuse_prefix, pa
     assert _compare(got, ref) <= 1
 
 
+def test_plain_own_attention_at_many_rows_equals_reference(llama, llama_case, monkeypatch):
+    # Decode steps of at least OWN_PLAIN_ROWS rows take the own part of attention as plain
+    # products; a threshold of 2 makes this run's steps take it.
+    from evalkit.backends import split_attention
+
+    model, tok = llama
+    stop, ref = llama_case
+    monkeypatch.setattr(split_attention, "OWN_PLAIN_ROWS", 2)
+    plain = []
+    real_plain = split_attention._plain
+    monkeypatch.setattr(split_attention, "_plain", lambda *a: plain.append(1) or real_plain(*a))
+    got = greedy_generate(model, tok, PROMPTS, max_new_tokens=MAX_NEW, stop=stop, batch_size=8)
+    assert plain  # the path was taken
+    assert _compare(got, ref) <= 1
+
+
 def test_batch_refills_and_matches(llama, llama_case, monkeypatch):
     model, tok = llama
     stop, ref = llama_case

@@ -47,6 +47,7 @@ def test_flash_matches_the_definition_whatever_the_layout(strided):
 class _Slab:
     def __init__(self, prefix):
         self.prefix_kv = [prefix]
+        self.mask_parts = {}  # as kvslab.Slab starts each forward call
 
 
 class _Layer:
@@ -54,7 +55,12 @@ class _Layer:
 
 
 @pytest.mark.parametrize("T", [1, 5])
-def test_split_attention_equals_attention_over_prefix_and_own_keys_joined(T):
+@pytest.mark.parametrize("own_form", ["fused", "plain"])
+def test_split_attention_equals_attention_over_prefix_and_own_keys_joined(T, own_form, monkeypatch):
+    # Decode steps with many rows take the own part as plain products (OWN_PLAIN_ROWS); here
+    # a threshold of 1 row makes this small batch take that path.
+    if own_form == "plain":
+        monkeypatch.setattr(sa, "OWN_PLAIN_ROWS", 1)
     torch.manual_seed(1)
     B, Hq, Hkv, P, L, D = 4, 6, 2, 30, 12, 8
     query = _strided_last_dim(torch.randn(B, Hq, T, D))  # as a decode step's query can come
@@ -63,11 +69,15 @@ def test_split_attention_equals_attention_over_prefix_and_own_keys_joined(T):
     own = torch.rand(B, 1, T, L) > 0.3
     own[..., -T:] = torch.eye(T, dtype=torch.bool)  # every query sees its own column
     mask = torch.cat([torch.ones(B, 1, T, P, dtype=torch.bool), own], dim=-1)
-    token = sa.active_slab.set(_Slab((pk, pv)))
+    slab = _Slab((pk, pv))
+    token = sa.active_slab.set(slab)
     try:
         got, _ = sa.split_attention(_Layer(), query, key, value, mask, scaling=D ** -0.5)
+        # A second layer given the same mask reuses what the first derived from it.
+        again, _ = sa.split_attention(_Layer(), query, key, value, mask, scaling=D ** -0.5)
     finally:
         sa.active_slab.reset(token)
+    assert len(slab.mask_parts) == 1 and torch.equal(got, again)
     r = Hq // Hkv
     k_all = torch.cat([pk[None].expand(B, -1, -1, -1), key], dim=2).repeat_interleave(r, dim=1)
     v_all = torch.cat([pv[None].expand(B, -1, -1, -1), value], dim=2).repeat_interleave(r, dim=1)

@@ -125,6 +125,7 @@ class Slab(Cache):
         self.rows = rows
         self.width = 0          # columns attention reads: the longest row's
         self.calls = 0
+        self.mask_parts: dict = {}
         # Where the running forward call writes: (None, column slice) when every row appends
         # at the same column, else ([B, 1] row, [B, T] column) index tensors.
         self.write_at: tuple = (None, slice(0, 0))
@@ -193,6 +194,7 @@ class Slab(Cache):
         mask, at = self._masks(pos, real, width), pos.clamp(min=0)
         self.width = width
         self.calls += 1
+        self.mask_parts = {}  # what attention derives from each mask, once per forward call
         token = active_slab.set(self)
         try:
             if llama_pass.applies(model):  # the same numbers without transformers' per-call wrappers
@@ -202,6 +204,7 @@ class Slab(Cache):
                                use_cache=True, logits_to_keep=1).logits[:, -1, :]
         finally:
             active_slab.reset(token)
+            self.mask_parts = {}
         self.tail = [t + T for t in self.tail]
         if any(layer.calls != self.calls for layer in self.layers):
             raise BackendError("model type not supported by evalkit's engine: its layers do not "

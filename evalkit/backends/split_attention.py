@@ -95,9 +95,60 @@ def _flash(q, k, v, mask, scale):
     return _FLASH(q, k, v, attn_mask=mask, scale=scale)[:2]
 
 
+# Decode steps (one query per row) with at least this many rows take the own part as plain
+# products (:func:`_plain`), fewer rows the fused kernel. Measured on SmolLM2-135M on this
+# workplace's AVX-512 machine, per-step medians of decode steps over a 475-token prefix,
+# variants alternated (138 steps each): at 128 rows 376 ms plain against 406 ms fused; at
+# 32 / 64 / 96 rows 141 / 229 / 318 ms against 142 / 231 / 308 ms (no difference). On an earlier
+# AVX2 machine the fused kernel was ahead by 1-3% at 4-128 rows (a step at 128 rows 242-246
+# against 248-254 ms): the plain form spends as long in its softmax's small element-wise
+# operations as in reading the keys, which pays only when there are many rows.
+OWN_PLAIN_ROWS = 128
+
+
+def _plain(q, k, v, additive, scale):
+    """Output and log-sum-exp of softmax attention as plain products: q [B, H, t, D],
+    k/v [B, H, L, D], additive mask [B, 1, t, L] (every row has a visible column)."""
+    s = torch.matmul(q, k.transpose(-1, -2)).mul_(scale).add_(additive)  # [B, H, t, L]
+    lse = torch.logsumexp(s, dim=-1)                                     # [B, H, t]
+    return torch.matmul(s.sub_(lse[..., None]).exp_(), v), lse
+
+
 def _additive(allowed: torch.Tensor, dtype) -> torch.Tensor:
     return torch.zeros(allowed.shape, dtype=dtype, device=allowed.device).masked_fill_(
         ~allowed, float("-inf"))
+
+
+class _MaskParts:
+    """What :func:`_merged` derives from one attention mask: the same for every layer that
+    gets that mask, so it is built once per forward call (measured here at 128 rows: the
+    per-layer checks and additive masks cost 5-7 ms of a 400 ms decode step)."""
+
+    __slots__ = ("mask", "prefix", "hidden", "own")
+
+    def __init__(self, attention_mask, P: int, r: int, dtype):
+        B, _, T, S = attention_mask.shape
+        L = S - P
+        self.mask = attention_mask  # held, so the id it is filed under stays this mask's
+        seen = attention_mask[..., :P]                                       # [B, 1, T, P]
+        self.prefix = self.hidden = None
+        if not bool(seen.all()):  # sliding-window layers may hide part of the prefix
+            self.prefix = _additive(seen.expand(B, r, T, P).reshape(1, 1, B * r * T, P), dtype)
+            # A query whose window has left the prefix entirely: that part must weigh nothing
+            # (the kernel's output for an all-masked row is not defined as zero weight).
+            hidden = ~seen.any(-1).expand(B, r, T).reshape(B, 1, r * T)      # [B, 1, rT]
+            self.hidden = hidden if bool(hidden.any()) else None
+        own = attention_mask[..., P:][:, :, None].expand(B, 1, r, T, L).reshape(B, 1, r * T, L)
+        self.own = _additive(own, dtype)                                     # [B, 1, rT, L]
+
+
+def _mask_parts(attention_mask, P: int, r: int, dtype) -> _MaskParts:
+    """:class:`_MaskParts` of ``attention_mask``, kept with the running slab for the forward call."""
+    slab = active_slab.get()
+    parts = slab.mask_parts.get(id(attention_mask))
+    if parts is None or parts.mask is not attention_mask:
+        parts = slab.mask_parts[id(attention_mask)] = _MaskParts(attention_mask, P, r, dtype)
+    return parts
 
 
 def _merged(query, key, value, prefix, attention_mask, scale):
@@ -106,31 +157,20 @@ def _merged(query, key, value, prefix, attention_mask, scale):
     B, Hq, T, D = query.shape
     Hkv, P = pk.shape[0], pk.shape[1]
     r = Hq // Hkv
-    L = key.shape[2]
+    parts = _mask_parts(attention_mask, P, r, query.dtype)
     # Query order (row, head-in-group, token) within each key/value head, as repeat_kv lays heads.
     qp = query.reshape(B, Hkv, r * T, D).permute(1, 0, 2, 3).reshape(1, Hkv, B * r * T, D)
-    seen = attention_mask[..., :P]                                           # [B, 1, T, P]
-    pmask = None
-    if not bool(seen.all()):  # sliding-window layers may hide part of the prefix
-        pmask = _additive(seen.expand(B, r, T, P).reshape(1, 1, B * r * T, P), query.dtype)
-    o1, l1 = _flash(qp, pk[None], pv[None], pmask, scale)
+    o1, l1 = _flash(qp, pk[None], pv[None], parts.prefix, scale)
     o1 = o1.reshape(Hkv, B, r * T, D).permute(1, 0, 2, 3)                    # [B, Hkv, rT, D]
     l1 = l1.reshape(Hkv, B, r * T).permute(1, 0, 2)                          # [B, Hkv, rT]
-    if pmask is not None:
-        # A query whose window has left the prefix entirely: that part must weigh nothing
-        # (the kernel's output for an all-masked row is not defined as zero weight).
-        hidden = ~seen.any(-1).expand(B, r, T).reshape(B, 1, r * T)          # [B, 1, rT]
-        if bool(hidden.any()):
-            l1 = l1.masked_fill(hidden, float("-inf"))
-            o1 = o1.masked_fill(hidden[..., None], 0.0)
+    if parts.hidden is not None:
+        l1 = l1.masked_fill(parts.hidden, float("-inf"))
+        o1 = o1.masked_fill(parts.hidden[..., None], 0.0)
     q = query.reshape(B, Hkv, r * T, D)
-    own = attention_mask[..., P:][:, :, None].expand(B, 1, r, T, L).reshape(B, 1, r * T, L)
-    # The fused kernel for the own part at decode steps too (one query per row): measured here
-    # on SmolLM2-135M against plain products, softmax and a second product, a decode step at
-    # 4 / 16 / 64 / 128 rows took 46-48 / 69-70 / 147-152 / 242-246 ms against 48-49 / 72-73 /
-    # 153 / 248-254 ms (three runs each, alternated): the plain form spent as long in its
-    # softmax's small element-wise operations as in reading the keys.
-    o2, l2 = _flash(q, key, value, _additive(own, query.dtype), scale)
+    if T == 1 and B >= OWN_PLAIN_ROWS:
+        o2, l2 = _plain(q, key, value, parts.own, scale)
+    else:
+        o2, l2 = _flash(q, key, value, parts.own, scale)
     w = torch.sigmoid(l1 - l2)[..., None].to(query.dtype)                   # log-sum-exps are float32
     out = o2 + w * (o1 - o2)
     return out.reshape(B, Hq, T, D).transpose(1, 2).contiguous(), None
