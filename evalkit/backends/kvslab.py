@@ -125,7 +125,7 @@ class Slab(Cache):
         self.rows = rows
         self.width = 0          # columns attention reads: the longest row's
         self.calls = 0
-        self.mask_parts: dict = {}
+        self.mask_parts: dict = {}  # what attention derives from each mask, during one forward call
         # Where the running forward call writes: (None, column slice) when every row appends
         # at the same column, else ([B, 1] row, [B, T] column) index tensors.
         self.write_at: tuple = (None, slice(0, 0))
@@ -194,7 +194,6 @@ class Slab(Cache):
         mask, at = self._masks(pos, real, width), pos.clamp(min=0)
         self.width = width
         self.calls += 1
-        self.mask_parts = {}  # what attention derives from each mask, once per forward call
         token = active_slab.set(self)
         try:
             if llama_pass.applies(model):  # the same numbers without transformers' per-call wrappers
