@@ -168,24 +168,27 @@ def greedy_pick(logits: torch.Tensor) -> tuple[list[int], list[float]]:
     B, V = logits.shape
     blk = pick_block(V)
     if blk is None:  # no block size fits this vocabulary: one top-2 scan of the whole row
-        top, idx = torch.topk(logits, 2, dim=-1)
-        gap, best = top[:, 0] - top[:, 1], idx[:, 0]
-        if bool((gap == 0).any()):
-            best = torch.where(gap == 0, logits.argmax(dim=-1), best)
-        return best.tolist(), gap.tolist()
+        top, best = _top_two(logits)
+        return best.tolist(), (top[:, 0] - top[:, 1]).tolist()
     blocks = logits.reshape(B, V // blk, blk)
     block_max = blocks.amax(dim=-1)                                  # [B, V / blk]
-    bv, bi = torch.topk(block_max, 2, dim=-1)
-    block = bi[:, 0]
-    if bool((bv[:, 0] == bv[:, 1]).any()):
-        block = torch.where(bv[:, 0] == bv[:, 1], block_max.argmax(dim=-1), block)
+    bv, block = _top_two(block_max)
     inside = blocks[torch.arange(B, device=logits.device), block]   # [B, blk]
-    iv, ii = torch.topk(inside, 2, dim=-1)
-    at = ii[:, 0]
-    if bool((iv[:, 0] == iv[:, 1]).any()):
-        at = torch.where(iv[:, 0] == iv[:, 1], inside.argmax(dim=-1), at)
+    iv, at = _top_two(inside)
     gap = iv[:, 0] - torch.maximum(iv[:, 1], bv[:, 1])
     return (block * blk + at).tolist(), gap.tolist()
+
+
+def _top_two(x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+    """The two largest values of each row of ``x`` [B, N] and the first index of the largest
+    (argmax's choice; top-k may list either of two equal values first, so argmax decides
+    the rows that have a tie)."""
+    top, idx = torch.topk(x, 2, dim=-1)
+    first = idx[:, 0]
+    tied = top[:, 0] == top[:, 1]
+    if bool(tied.any()):
+        first = torch.where(tied, x.argmax(dim=-1), first)
+    return top, first
 
 
 def regroup(rows: int, live: int, waiting: int, cap: int, full: bool) -> str:
