@@ -174,6 +174,73 @@ def decode_rate(model, tok, prompts, batch: int, steps: int) -> float:
     return best
 
 
+def linear_flops_per_token(model) -> tuple[int, int]:
+    """FLOPs one token costs in the model's linear layers (2 x weight elements each): the
+    layers' (the body's) and the vocabulary projection's. Attention's products and all the
+    element-wise work are left out, so a bound built on these counts is generous."""
+    head = model.get_output_embeddings()
+    body = sum(2 * m.weight.numel() for m in model.modules()
+               if isinstance(m, torch.nn.Linear) and m is not head)
+    return body, 2 * head.weight.numel()
+
+
+def workload(tok, prompts, gens) -> dict[str, int]:
+    """What the engine had to compute for one style's run, from its prompts and completions:
+    the shared prefix once, each question's own tokens after it, the vocabulary projections
+    that start each completion, and one decode step per generated token after the first."""
+    from evalkit.backends.engine import common_prefix_length
+
+    enc = tok(list(prompts), add_special_tokens=False)["input_ids"]
+    P = min(common_prefix_length(enc), min(len(e) for e in enc) - 1) if len(enc) > 1 else 0
+    return {"prefix": P, "suffix": sum(len(e) - P for e in enc), "questions": len(enc),
+            "decode": sum(max(0, g.new_tokens - 1) for g in gens)}
+
+
+def workload_gflop(model, work: dict[str, int]) -> float:
+    """The linear layers' GFLOP of :func:`workload`'s counts."""
+    body, head = linear_flops_per_token(model)
+    return (body * (work["prefix"] + work["suffix"]) + head * work["questions"]
+            + (body + head) * work["decode"]) / 1e9
+
+
+def layer_rate(model, rows: int = 512, reps: int = 3) -> float:
+    """GFLOP/s of the model's own linear layers at ``rows`` rows (plain ``F.linear``, best of
+    ``reps``): the rate their shapes allow, at or below the square matmul's."""
+    lins = [m for m in model.modules() if isinstance(m, torch.nn.Linear)]
+    xs = {m.in_features: torch.randn(rows, m.in_features, dtype=m.weight.dtype) for m in lins}
+
+    def once():
+        with torch.inference_mode():
+            for m in lins:
+                torch.nn.functional.linear(xs[m.in_features], m.weight)
+
+    once()
+    t = min(_clock(once)[1] for _ in range(reps))
+    return rows * sum(2 * m.weight.numel() for m in lins) / t / 1e9
+
+
+def bound_table(model, works, rates, gflops: float, shapes_gflops: float) -> list[str]:
+    """What the arithmetic allows: each style's linear-layer GFLOP at the matmul rate and at
+    the rate the model's layer shapes reach, the items/s that leaves (attention and all else
+    free), and the engine's and plain ``generate``'s places against it."""
+    out = ["| style | prefix | own tokens | decode steps | GFLOP | products alone | bound items/s | "
+           "engine's share | bound / plain generate |", "| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: |"]
+    for style, w in works.items():
+        g = workload_gflop(model, w)
+        plain, engine = rates[style]
+        for label, rate in (("square matmul", gflops), ("layer shapes", shapes_gflops)):
+            bound = w["questions"] / (g / rate)
+            out.append(f"| {style} ({label}) | {w['prefix']} | {w['suffix']} | {w['decode']} | {g:.4g} | "
+                       f"{g / rate:.2f} s | {bound:.1f} | {100 * engine / bound:.0f}% | {bound / plain:.1f}x |")
+    out += ["", f"Bound: the linear layers' products of the run (the shared prefix once, each question's "
+            f"own tokens, one vocabulary projection per question, one decode step per generated token "
+            f"after the first) at {gflops:.1f} GFLOP/s (square matmul) or {shapes_gflops:.1f} GFLOP/s "
+            f"(this model's layers at 512 rows), with attention, padding, rows that ended and all "
+            f"element-wise work counted as free. No float32 runner computing these products is faster; "
+            f"the last column is the most any such runner could gain over plain `generate` here.", ""]
+    return out
+
+
 def linear_layers(model) -> str:
     """Which form the engine's linear layers take here; packs the weights now if they will be
     packed, so the one-off cost is reported here and not charged to the first timed run."""
@@ -242,6 +309,7 @@ def main(argv=None) -> None:
     plain_generate(model, tok, warm[:1], 2)
     batched_generate(model, tok, warm, 2)
     f32_texts, differ_notes = {}, []
+    works, rates = {}, {}  # per style: what the engine computed; items/s of plain generate and the engine
     engine_notes = []
     peaks: list[tuple[str, float]] = []  # the process's peak so far, after each part: where it was reached
     for style, (shots, max_new) in STYLES.items():
@@ -267,6 +335,8 @@ def main(argv=None) -> None:
         unstable = sum(len({g.text for g in row}) > 1 for row in zip(*(r for r, _ in runs)))
         useful = sum(g.new_tokens for g in eng)
         rate_e = n / t_eng
+        works[style] = workload(tok, prompts, eng)
+        rates[style] = (n_plain / t_a, rate_e)
         per = [("plain generate, one at a time", n_plain, t_a, pa),
                (f"batched generate + stop_strings (batch {BASELINE_BATCH})", n, t_b, pb),
                ("evalkit engine" + (f" (median of {len(runs)} runs)" if len(runs) > 1 else ""),
@@ -318,6 +388,7 @@ def main(argv=None) -> None:
     lines += ["", f"Compute bound: 2 x {n_params / 1e6:.3g}M parameters FLOPs per token at the matmul rate; "
               f"bandwidth bound: {bw_bound:.1f} tokens/s ({weight_bytes / 1e6:.3g} MB of weights read per token).", ""]
     peaks.append(("decode table", _peak_mb()))
+    lines += bound_table(model, works, rates, gflops, layer_rate(model))
 
     lines += ["| direct shots | questions | seconds per item |", "| ---: | ---: | ---: |"]
     for shots in ((2, 8) if args.quick else (2, 4, 8)):

@@ -7,10 +7,15 @@ compared with the engine's (plain and batched ``generate`` are the outside refer
 
 from __future__ import annotations
 
+import importlib.util
 import re
 import subprocess
 import sys
 from pathlib import Path
+
+import torch
+from torch.utils.flop_counter import FlopCounterMode
+from transformers import AutoModelForCausalLM
 
 from .tiny import build_tiny_model
 
@@ -25,7 +30,7 @@ def test_benchmark_quick_run_prints_every_section(tmp_path):
     assert proc.returncode == 0, proc.stderr[-2000:]
     out = proc.stdout
     for heading in ("Machine: memory read", "Engine's linear layers:", "| style | method |", "| decode batch |",
-                    "| direct shots |", "bfloat16 items/s", "Peak resident memory"):
+                    "| style | prefix | own tokens |", "| direct shots |", "bfloat16 items/s", "Peak resident memory"):
         assert heading in out, heading
     for style in ("direct", "worked"):
         rows = [line for line in out.splitlines()
@@ -47,3 +52,28 @@ def test_benchmark_quick_run_prints_every_section(tmp_path):
     assert mbs == sorted(mbs) and mbs[0] > 0
     # Either all texts agreed, or each difference is listed with its near-tie count.
     assert "Every completion of every method equals the engine's" in out or "completion(s) differ" in out
+
+
+def _script():
+    spec = importlib.util.spec_from_file_location("runner_speed", ROOT / "benchmarks" / "runner_speed.py")
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+def test_linear_flops_per_token_match_torchs_flop_counter(tmp_path):
+    """The bound's per-token count of the linear layers' FLOPs equals what torch's own FLOP
+    counter (torch.utils.flop_counter) records for those modules in a real forward pass."""
+    folder = build_tiny_model(tmp_path / "tiny", arch="llama", seed=0)
+    model = AutoModelForCausalLM.from_pretrained(folder).eval()
+    body, head = _script().linear_flops_per_token(model)
+    T = 7
+    counter = FlopCounterMode(display=False)
+    with torch.inference_mode(), counter:
+        model(input_ids=torch.arange(T)[None] % model.config.vocab_size)  # logits for every position
+    counts = counter.get_flop_counts()
+    linear_names = {name for name, m in model.named_modules() if isinstance(m, torch.nn.Linear)}
+    counted = {k: sum(v.values()) for k, v in counts.items()
+               if k.split(".", 1)[-1] in linear_names and k != "Global"}
+    assert len(counted) == len(linear_names)
+    assert sum(counted.values()) == T * (body + head)
