@@ -188,10 +188,10 @@ def workload(tok, prompts, gens) -> dict[str, int]:
     """What the engine had to compute for one style's run, from its prompts and completions:
     the shared prefix once, each question's own tokens after it, the vocabulary projections
     that start each completion, and one decode step per generated token after the first."""
-    from evalkit.backends.engine import common_prefix_length
+    from evalkit.backends.engine import shared_prefix_length
 
     enc = tok(list(prompts), add_special_tokens=False)["input_ids"]
-    P = min(common_prefix_length(enc), min(len(e) for e in enc) - 1) if len(enc) > 1 else 0
+    P = shared_prefix_length(enc)
     return {"prefix": P, "suffix": sum(len(e) - P for e in enc), "questions": len(enc),
             "decode": sum(max(0, g.new_tokens - 1) for g in gens)}
 
@@ -208,6 +208,7 @@ def layer_rate(model, rows: int = 512, reps: int = 3) -> float:
     ``reps``): the rate their shapes allow, at or below the square matmul's."""
     lins = [m for m in model.modules() if isinstance(m, torch.nn.Linear)]
     xs = {m.in_features: torch.randn(rows, m.in_features, dtype=m.weight.dtype) for m in lins}
+    flops = rows * sum(linear_flops_per_token(model))  # every linear layer, the head included
 
     def once():
         with torch.inference_mode():
@@ -216,7 +217,7 @@ def layer_rate(model, rows: int = 512, reps: int = 3) -> float:
 
     once()
     t = min(_clock(once)[1] for _ in range(reps))
-    return rows * sum(2 * m.weight.numel() for m in lins) / t / 1e9
+    return flops / t / 1e9
 
 
 def bound_table(model, works, rates, gflops: float, shapes_gflops: float) -> list[str]:

@@ -15,7 +15,7 @@ from transformers import AutoModelForCausalLM, AutoTokenizer
 
 from evalkit.backends import engine as engine_mod
 from evalkit.backends.engine import (TIE_MARGIN, Generation, auto_batch_size, common_prefix_length,
-                                     greedy_generate, kv_bytes_per_token)
+                                     greedy_generate, kv_bytes_per_token, shared_prefix_length)
 from evalkit.backends.kvslab import ATTENTION_NAME, Slab
 from evalkit.backends.reference import reference_generate, reference_trace
 from evalkit.errors import BackendError
@@ -293,6 +293,14 @@ def test_common_prefix_is_taken_over_tokens_not_text(llama):
     assert common_prefix_length(enc) < len(alone)
     ref = reference_generate(model, tok, prompts, max_new_tokens=8)
     assert _compare(greedy_generate(model, tok, prompts, max_new_tokens=8), ref) == 0
+
+
+def test_shared_prefix_leaves_every_prompt_a_token_of_its_own():
+    assert shared_prefix_length([[5, 6, 7]]) == 0                      # one prompt: nothing shared
+    assert shared_prefix_length([[5, 6, 7, 8], [5, 6, 9]]) == 2        # the common tokens
+    assert shared_prefix_length([[5, 6, 7], [5, 6, 7, 8]]) == 2        # one prompt is the other's prefix
+    assert shared_prefix_length([[5, 6], [5, 6]]) == 1                 # identical prompts
+    assert shared_prefix_length([[1, 2], [3, 4]]) == 0
 
 
 def test_one_new_token_and_single_prompt(llama):

@@ -53,7 +53,7 @@ from .kvslab import ATTENTION_NAME, AttentionPlan, Slab
 from .linear_order import engine_linears, should_pack
 from .stops import StopWatcher, settle
 
-__all__ = ["Generation", "greedy_generate", "common_prefix_length", "eos_ids", "auto_batch_size",
+__all__ = ["Generation", "greedy_generate", "common_prefix_length", "shared_prefix_length", "eos_ids", "auto_batch_size",
            "kv_bytes_per_token", "regroup", "TIE_MARGIN"]
 
 # TIE_MARGIN (from .base, the one threshold evalkit uses): on SmolLM2-135M in float32 the
@@ -92,6 +92,15 @@ def common_prefix_length(seqs: Sequence[Sequence[int]]) -> int:
             i += 1
         n = i
     return n
+
+
+def shared_prefix_length(enc: Sequence[Sequence[int]]) -> int:
+    """Tokens of the prefix the engine computes once for prompts ``enc`` (token ids): their
+    common prefix, less a token where that would swallow a whole prompt (at least one token of
+    every prompt stays outside it: its logits start decoding); 0 for a single prompt."""
+    if len(enc) < 2:
+        return 0
+    return min(common_prefix_length(enc), min(len(e) for e in enc) - 1)
 
 
 def eos_ids(model, tokenizer) -> set[int]:
@@ -325,9 +334,7 @@ def greedy_generate(model, tokenizer, prompts: Sequence[str], *, max_new_tokens:
     for i, e in enumerate(enc):
         if not e:
             raise BackendError(f"prompt {i} is empty after tokenisation; every prompt needs text")
-    # At least one token of every prompt stays outside the prefix: its logits start decoding.
-    P = min(common_prefix_length(enc), min(len(e) for e in enc) - 1) \
-        if reuse_prefix and len(prompts) > 1 else 0
+    P = shared_prefix_length(enc) if reuse_prefix else 0
     eos = eos_ids(model, tokenizer)
     results: list[Generation | None] = [None] * len(prompts)
 
