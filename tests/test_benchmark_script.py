@@ -44,6 +44,15 @@ def test_benchmark_quick_run_prints_every_section(tmp_path):
     for style in ("direct", "worked"):
         note = [line for line in out.splitlines() if line.startswith(f"- {style}: the engine's runs took")]
         assert len(note) == 1 and "every run gave the same completions" in note[0], note
+    # Decode table: the bandwidth bound is per row of the batch (a step reads the weights once
+    # for all rows), so each share is tokens/s over batch x the per-row bound printed below it.
+    per_row = float(re.search(r"bandwidth bound: .*?, ([\d.]+) tokens/s per row of the batch", out).group(1))
+    decode_row = re.compile(r"\| \d+ \| [\d.]+ \| [\d.]+ \| [\d.]+% \| [\d.]+% \|")
+    decode = [line.split("|")[1:6] for line in out.splitlines() if decode_row.fullmatch(line)]
+    assert [int(b) for b, *_ in decode] == [1, 8], decode
+    for batch, rate, _, _, share in decode:
+        expected = 100 * float(rate) / (int(batch) * per_row)
+        assert abs(float(share.strip(" %")) - expected) <= 0.05 + 0.002 * expected, (batch, rate, share, per_row)
     # Peak memory is traced part by part; the figures never fall (it is the peak so far).
     peak = next(line for line in out.splitlines() if line.startswith("Peak resident memory"))
     parts = re.findall(r"(direct timings|worked timings|decode table|shots table|bfloat16) (\d+)", peak)
