@@ -92,3 +92,21 @@ def test_every_command_is_documented_in_readme():
     readme = (pathlib.Path(__file__).resolve().parent.parent / "README.md").read_text()
     for name in typer.main.get_command(app).commands:
         assert f"evalkit {name}" in readme, f"README does not mention 'evalkit {name}'"
+
+
+@pytest.mark.parametrize("columns, cut", [(None, False), ("60", True)])
+def test_piped_tables_are_not_cut_short(tmp_path, columns, cut):
+    """Written to a pipe, rich would assume 80 columns and end long cells with an ellipsis;
+    the CLI gives piped tables their natural width unless COLUMNS says otherwise."""
+    env = {k: v for k, v in os.environ.items() if k != "COLUMNS"}
+    env.update({"HF_HUB_OFFLINE": "1", "EVALKIT_CACHE": str(tmp_path / "cache")})
+    if columns:
+        env["COLUMNS"] = columns
+    r = subprocess.run([sys.executable, "-m", "evalkit", "models"], capture_output=True, text=True,
+                       env=env, timeout=120)
+    assert r.returncode == 0, r.stderr
+    assert ("…" in r.stdout) is cut, r.stdout
+    if not cut:
+        for name in ("smollm2-135m", "gemma3-270m", "converted", "parameters", "instruct"):
+            assert name in r.stdout
+        assert max(map(len, r.stdout.splitlines())) > 80
