@@ -3,15 +3,14 @@
 from __future__ import annotations
 
 import functools
-import os
 import sys
 from pathlib import Path
 from typing import List, Optional
 
 import typer
-from rich.console import Console
 from rich.table import Table
 
+from .console import console
 from .errors import EvalkitError
 
 app = typer.Typer(
@@ -21,20 +20,8 @@ app = typer.Typer(
     add_completion=False,
     pretty_exceptions_enable=False,
 )
-PIPED_WIDTH = 240  # columns for output that goes to a file or a pipe (no terminal to fit)
-
-
-def _console(stderr: bool = False) -> Console:
-    """A console for stdout or stderr. In a terminal rich fits the terminal's width; written to
-    a file or a pipe (where rich would assume 80 columns and cut table cells short with an
-    ellipsis) tables get their natural width, up to PIPED_WIDTH. COLUMNS, if set, wins."""
-    stream = sys.stderr if stderr else sys.stdout
-    piped = not (hasattr(stream, "isatty") and stream.isatty()) and "COLUMNS" not in os.environ
-    return Console(stderr=stderr, width=PIPED_WIDTH if piped else None)
-
-
-out = _console()
-err = _console(stderr=True)
+out = console()
+err = console(stderr=True)
 _state = {"debug": False}
 
 

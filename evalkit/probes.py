@@ -127,7 +127,9 @@ def probe_run(run_dir: str | Path, backend_factory: Callable | None = None, limi
         if progress and requests:
             from rich.progress import Progress
 
-            bar = Progress()
+            from .console import console
+
+            bar = Progress(console=console(stderr=True))
             task = bar.add_task("probes", total=len(requests))
             bar.start()
         try:

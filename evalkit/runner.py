@@ -115,10 +115,12 @@ class _Progress:
         from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn,
                                    TimeElapsedColumn, TimeRemainingColumn)
 
+        from .console import console
+
         self.bar = Progress(
             TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
             TextColumn("{task.fields[rate]}"), TimeElapsedColumn(), TextColumn("left"),
-            TimeRemainingColumn(), transient=False,
+            TimeRemainingColumn(), transient=False, console=console(stderr=True),
         )
         self.task = self.bar.add_task("starting", total=total, rate="")
         self.start = time.perf_counter()

@@ -59,6 +59,9 @@ def test_study_run_kill_resume_and_rerun(tmp_path, task, tiny):
     full = subprocess.run([sys.executable, "-m", "evalkit", "run", str(study), "--out", str(tmp_path / "full"), "--no-cache"],
                           capture_output=True, text=True, env=env, timeout=600)
     assert full.returncode == 0, full.stderr
+    # Progress goes to stderr, so stdout holds the results alone (a redirected run stays clean).
+    assert "items/s" in full.stderr and "items/s" not in full.stdout, (full.stdout, full.stderr)
+    assert "accuracy per condition" in full.stdout
     expected = _records(tmp_path / "full")
     # direct 0-shot, direct 2-shot x 2 draws, worked 0-shot, worked 2-shot x 2 draws, worked-zero: 7 conditions
     assert expected["condition"].nunique() == 7 and len(expected) == 7 * 12
