@@ -151,3 +151,10 @@ def test_diff_and_rerun(study, tmp_path):
     assert same.identical and same.compared == len(a.records) and "byte for byte" in same.summary()
     other = rerun(tmp_path / "a", out=tmp_path / "other", backend_factory=changed, progress=False)
     assert not other.identical and len(other.differing) == 1
+
+
+def test_tie_note_counts_in_words():
+    from evalkit.report.markdown import tie_note
+
+    assert tie_note(1).startswith("1 record met a near-tie") and "its completion may change" in tie_note(1)
+    assert tie_note(3).startswith("3 records met a near-tie") and "their completions may change" in tie_note(3)

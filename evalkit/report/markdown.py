@@ -142,6 +142,16 @@ def _probe_section(rates: pd.DataFrame | None) -> list[str]:
     return out + [""]
 
 
+def tie_note(ties: int) -> str:
+    """The report's sentence on records whose decoding met a near-tie (``ties`` > 0)."""
+    from ..backends.base import TIE_MARGIN
+
+    which = "1 record met" if ties == 1 else f"{ties} records met"
+    its = "its completion" if ties == 1 else "their completions"
+    return (f"{which} a near-tie between the two best next tokens (top-2 logit gap < {TIE_MARGIN:g}): "
+            f"{its} may change under a different batch shape.")
+
+
 def render_report(run, parts=None) -> str:
     """The report's Markdown text."""
     if parts is None:
@@ -176,10 +186,7 @@ def render_report(run, parts=None) -> str:
     lines += _probe_section(parts.probes)
     ties = int(summary["ties"].sum()) if "ties" in summary else 0
     if ties:
-        from ..backends.base import TIE_MARGIN
-
-        lines += [f"{ties} records met a near-tie between the two best next tokens (top-2 logit gap < {TIE_MARGIN:g}): "
-                  "their completions may change under a different batch shape.", ""]
+        lines += [tie_note(ties), ""]
     lines += ["## Reproduce", "", "```", f"evalkit rerun {run.folder}", "```", ""]
     return "\n".join(lines)
 
