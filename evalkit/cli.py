@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import functools
 import sys
+import warnings
 from pathlib import Path
 from typing import List, Optional
 
@@ -11,7 +12,7 @@ import typer
 from rich.table import Table
 
 from .console import console
-from .errors import EvalkitError
+from .errors import EvalkitError, EvalkitWarning
 
 app = typer.Typer(
     name="evalkit",
@@ -25,9 +26,18 @@ err = console(stderr=True)
 _state = {"debug": False}
 
 
+def _show_warning(message, category, filename, lineno, file=None, line=None, _default=warnings.showwarning):
+    """evalkit's own warnings as one line on stderr; other libraries' as Python prints them."""
+    if issubclass(category, EvalkitWarning):
+        err.print(f"warning: {message}", markup=False, highlight=False, soft_wrap=True)
+    else:
+        _default(message, category, filename, lineno, file, line)
+
+
 @app.callback()
 def _main(debug: bool = typer.Option(False, "--debug", help="Show full tracebacks for errors.")) -> None:
     _state["debug"] = debug
+    warnings.showwarning = _show_warning
 
 
 def command(fn):

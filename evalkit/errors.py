@@ -8,6 +8,9 @@
     ├── StoreError       a run folder or its store is missing or inconsistent
     └── BackendError     a backend failed while generating
 
+    EvalkitWarning       something the user should know that does not stop the work
+                         (a busy machine's timings, a cache that could not be written)
+
 The CLI prints ``str(error)`` on one line and exits 2. Third-party errors are translated
 at the boundary (``raise ... from None`` where the original adds nothing for the user).
 """
@@ -22,6 +25,7 @@ __all__ = [
     "ModelError",
     "StoreError",
     "BackendError",
+    "EvalkitWarning",
 ]
 
 
@@ -56,3 +60,7 @@ class StoreError(EvalkitError):
 
 class BackendError(EvalkitError):
     """A backend failed while generating."""
+
+
+class EvalkitWarning(UserWarning):
+    """A warning for the user; the CLI prints it as one line, ``warning: ...``."""

@@ -34,7 +34,7 @@ from datetime import datetime, timezone
 from pathlib import Path
 from urllib.parse import urlparse
 
-from evalkit.errors import ModelError
+from evalkit.errors import EvalkitWarning, ModelError
 
 __all__ = [
     "Progress",
@@ -384,7 +384,7 @@ def save_converted(model, tokenizer, sha256: str, source_file: str, ref: str,
     except OSError as exc:
         # Loading worked; only the shortcut for next time is lost, so warn rather than fail.
         warnings.warn(f"could not save the dequantized model to {final}: {one_line(exc)}; "
-                      f"the next load will dequantize the GGUF again", RuntimeWarning, stacklevel=3)
+                      f"the next load will dequantize the GGUF again", EvalkitWarning, stacklevel=3)
         return None
     finally:
         if tmp is not None:

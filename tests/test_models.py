@@ -18,7 +18,7 @@ from pathlib import Path
 import pytest
 import torch
 
-from evalkit.errors import ModelError
+from evalkit.errors import EvalkitWarning, ModelError
 from evalkit.model_cache import TOKENIZER_FORM, WheelPart, compact_bpe_tokenizer, converted_dir
 from evalkit.models import PACKAGED_MODELS, PackagedModel, fetch, list_models, load, resolve
 from tests.tiny import SPECIAL_TOKENS, build_tiny_gguf, build_tiny_model
@@ -512,7 +512,7 @@ def test_gguf_converted_folder_without_marker_is_rebuilt(cache, tiny_gguf):
 def test_gguf_cache_that_cannot_be_written_warns_and_still_loads(cache, tiny_gguf):
     cache.mkdir(parents=True, exist_ok=True)
     (cache / "converted").write_text("a file where the folder should be")
-    with pytest.warns(RuntimeWarning, match="could not save the dequantized model"):
+    with pytest.warns(EvalkitWarning, match="could not save the dequantized model"):
         loaded = load(str(tiny_gguf), threads=1)
     assert loaded.from_cache is False and not loaded.model.training
 
