@@ -8,15 +8,17 @@ from __future__ import annotations
 
 import functools
 import time
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable, Iterable
 
 from .answers import score
 from .compute import PeakMemory
+from .cpu_load import OtherLoad, busy_note
 from .backends.base import Backend, Completion
 from .data import Exemplar, Question, TaskData, load_task_data
-from .errors import EvalkitError
+from .errors import EvalkitError, EvalkitWarning
 from .prompts import draw_exemplars, render, sha256_text, template_source
 from .spec import Condition, Study, load_task
 from .store import GenerationCache, Record, RunStore, cache_key
@@ -167,13 +169,20 @@ def run_conditions(store: RunStore, study: Study, planned: Iterable[PlannedCondi
     counts = {"generated": 0, "cached": 0, "resumed": 0}
     todo_total = sum(len(pc.questions) for pc in planned)
     bar = _Progress(todo_total, progress)
+    warned_busy = False
     try:
         by_model: dict[str, list[PlannedCondition]] = {}
         for pc in planned:
             by_model.setdefault(pc.condition.model, []).append(pc)
         for model, conds in by_model.items():
             bar.describe(f"loading {model}")
+            loading = OtherLoad()  # others' load while this process loads: a warning before any timing
             backend = factory(model, study)
+            if not warned_busy:
+                note = busy_note(loading, f"while {model} loaded")
+                if note:
+                    warned_busy = True
+                    warnings.warn(note, EvalkitWarning, stacklevel=2)
             info = backend.describe()
             if on_backend:
                 on_backend(model, backend)
@@ -253,10 +262,16 @@ def run_study(study: Study, out: str | Path | None = None, backend_factory: Back
             resolve(model)
     run_dir, store, manifest = open_run_folder(study, tasks, out)
     started = time.perf_counter()
+    others = OtherLoad()
     backends: dict[str, dict] = {}
     try:
         counts = run_conditions(store, study, planned, backend_factory, use_cache, progress,
                                 on_backend=lambda m, b: backends.__setitem__(m, b.describe()))
     finally:
         store.close()
-    return finish_run(run_dir, manifest, backends, counts, time.perf_counter() - started)
+    cores = others.cores()
+    note = busy_note(others, "on average during the run", advice=False)
+    if note:
+        warnings.warn(note, EvalkitWarning, stacklevel=2)
+    return finish_run(run_dir, manifest, backends, {**counts, "other_processes_cores": round(cores, 2)},
+                      time.perf_counter() - started)

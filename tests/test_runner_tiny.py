@@ -136,3 +136,26 @@ def test_flops_estimate_matches_hand_count(tiny):
     model = AutoModelForCausalLM.from_pretrained(tiny)
     assert non_embedding_parameters(model) == expected
     assert forward_flops(expected, 1000) == 2 * expected * 1000
+
+
+def test_busy_machine_is_warned_and_reported(tmp_path, task, tiny):
+    """With another process keeping a core busy, the run says so (one warning line on stderr,
+    a sentence in both reports, the load in the manifest); the records are not affected."""
+    import json
+
+    spin = subprocess.Popen([sys.executable, "-c", "while True: pass"])
+    try:
+        time.sleep(0.5)
+        args = [sys.executable, "-m", "evalkit", "run", str(task), "-m", str(tiny), "-s", "direct", "-k", "2",
+                "--limit", "6", "--threads", "1", "--no-cache", "--out", str(tmp_path / "busy")]
+        r = subprocess.run(args, capture_output=True, text=True, env=_env(tmp_path), timeout=600)
+    finally:
+        spin.kill()
+        spin.wait()
+    assert r.returncode == 0, r.stderr
+    lines = [line for line in r.stderr.splitlines() if line.startswith("warning: other processes kept")]
+    assert any("on average during the run" in line for line in lines), r.stderr
+    session = json.loads((tmp_path / "busy" / "manifest.json").read_text())["last_session"]
+    assert session["other_processes_cores"] >= 0.5, session
+    assert "**Busy machine:** Other processes kept" in (tmp_path / "busy" / "report.md").read_text()
+    assert "Busy machine:</strong> Other processes kept" in (tmp_path / "busy" / "report.html").read_text()

@@ -13,6 +13,8 @@ import jinja2
 import pandas as pd
 from markupsafe import Markup, escape
 
+from .markdown import busy_sentence
+
 __all__ = ["render_html", "write_html", "marked_completion", "HTML_NAME"]
 
 HTML_NAME = "report.html"
@@ -98,6 +100,7 @@ def render_html(run, plots: dict[str, Path | None], comparisons: pd.DataFrame | 
         comparisons=[] if comparisons is None else comparisons.to_dict("records"),
         forest_svg=_svg(plots.get("forest")), size_svg=_svg(plots.get("size")),
         compute_svg=_svg(plots.get("compute")), flops_formula=FLOPS_FORMULA, cheapest=cheapest,
+        busy=busy_sentence(run.manifest),
         audit=audit, records=records, tie_margin=TIE_MARGIN,
         probes=None if probes is None or probes.empty else {"columns": list(probes.columns),
                                                             "rows": probes.to_dict("records")},

@@ -76,16 +76,32 @@ def _spread_section(spread: pd.DataFrame | None, components: pd.DataFrame | None
     return out + [""]
 
 
-def _cost_section(costs: pd.DataFrame, cheapest: str | None) -> list[str]:
+def busy_sentence(manifest: dict) -> str | None:
+    """What the report says when other processes loaded the CPU during the run's last session."""
+    from ..cpu_load import BUSY_CORES
+
+    session = manifest.get("last_session") or {}
+    cores = session.get("other_processes_cores")
+    if cores is None or cores < BUSY_CORES:
+        return None
+    n = (manifest.get("machine") or {}).get("cpu_count") or "?"
+    return (f"Other processes kept {cores:.1f} of {n} cores busy on average during the last "
+            f"session ({session.get('generated', 0)} records generated), so its wall seconds are slower and noisier "
+            "than on a quiet machine; the completions are not affected.")
+
+
+def _cost_section(costs: pd.DataFrame, cheapest: str | None, busy: str | None = None) -> list[str]:
     from ..compute import FLOPS_FORMULA
 
     if costs.empty or costs["flops"].isna().all():
         return []
     out = ["## Compute", "", f"{FLOPS_FORMULA}.", "",
            "Wall seconds are measured per condition (model loading excluded; cached records cost none); peak memory is "
-           "the process's largest resident set while the condition ran.", "",
-           "| condition | parameters | prompt tokens | generated tokens | est. FLOPs | wall seconds | peak memory |",
-           "| --- | ---: | ---: | ---: | ---: | ---: | ---: |"]
+           "the process's largest resident set while the condition ran.", ""]
+    if busy:
+        out += [f"**Busy machine:** {busy}", ""]
+    out += ["| condition | parameters | prompt tokens | generated tokens | est. FLOPs | wall seconds | peak memory |",
+            "| --- | ---: | ---: | ---: | ---: | ---: | ---: |"]
     for r in costs.itertuples():
         params = f"{int(r.parameters):,}" if pd.notna(r.parameters) else "?"
         wall = f"{r.wall_seconds:.1f}" if pd.notna(r.wall_seconds) else "cached"
@@ -181,7 +197,7 @@ def render_report(run, parts=None) -> str:
               "rule out a difference; the paired comparisons below do.", "", accuracy_table(summary), ""]
     lines += _comparison_section(parts.comparisons)
     lines += _spread_section(parts.spread, parts.components)
-    lines += _cost_section(parts.costs, parts.cheapest)
+    lines += _cost_section(parts.costs, parts.cheapest, busy_sentence(run.manifest))
     lines += _audit_section(run, parts.verdicts)
     lines += _probe_section(parts.probes)
     ties = int(summary["ties"].sum()) if "ties" in summary else 0
