@@ -25,6 +25,7 @@ a second time (those already converted in the cache). Output is a Markdown repor
 from __future__ import annotations
 
 import argparse
+import os
 import resource
 import statistics
 import sys
@@ -39,6 +40,7 @@ sys.path.insert(0, str(ROOT))
 from evalkit.backends.base import TIE_MARGIN  # noqa: E402
 from evalkit.backends.engine import greedy_generate  # noqa: E402
 from evalkit.backends.stops import cut_at_stop  # noqa: E402
+from evalkit.cpu_load import BUSY_CORES, OtherLoad  # noqa: E402
 
 TASK = ROOT / "task_specs" / "workshop" / "workshop.toml"
 STOP = ["\nQuestion:", "\n\n\n"]  # the study default (evalkit.spec.Decoding)
@@ -291,6 +293,7 @@ def main(argv=None) -> None:
         ap.error("--engine-runs must be at least 1")
     n = min(args.questions, 8) if args.quick else args.questions
     n_plain = min(n, 4 if args.quick else 8)  # (a) is slow: timed on a subset, per item
+    others = OtherLoad()  # CPU used by other processes while this runs: timings mean little if it is high
 
     model, tok, name = load_model(args.model_folder, "float32")
     if args.threads:
@@ -417,6 +420,10 @@ def main(argv=None) -> None:
     if not args.model_folder and not args.quick:
         del bf, model
         lines += second_loads() + [""]
+    cores = others.cores()
+    lines += [f"Other processes used {cores:.2f} cores' worth of CPU on average during the benchmark "
+              f"(of {os.cpu_count()}; psutil's counters, this process subtracted): "
+              + ("a quiet machine." if cores < BUSY_CORES else "a busy machine, so these timings are unreliable.")]
     print("\n".join(lines))
 
 

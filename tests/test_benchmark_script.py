@@ -30,7 +30,8 @@ def test_benchmark_quick_run_prints_every_section(tmp_path):
     assert proc.returncode == 0, proc.stderr[-2000:]
     out = proc.stdout
     for heading in ("Machine: memory read", "Engine's linear layers:", "| style | method |", "| decode batch |",
-                    "| style | prefix | own tokens |", "| direct shots |", "bfloat16 items/s", "Peak resident memory"):
+                    "| style | prefix | own tokens |", "| direct shots |", "bfloat16 items/s", "Peak resident memory",
+                    "Other processes used"):
         assert heading in out, heading
     for style in ("direct", "worked"):
         rows = [line for line in out.splitlines()
