@@ -27,6 +27,7 @@ __all__ = [
     "PairedComparison",
     "accuracy_interval",
     "difference_interval",
+    "same_difference_interval",
     "paired_comparison",
     "holm",
     "verdict_sentence",
@@ -66,7 +67,8 @@ def difference_interval(differences, alpha: float = 0.05) -> tuple[np.ndarray, n
     """t-interval for the mean of per-question differences, along the last axis.
 
     Works on a 2-D array (replications x questions) in one call. Where every difference is the
-    same the interval collapses to that value: the data show no variation to widen it.
+    same the t-interval would collapse to that value, as if a handful of agreeing questions
+    proved the two settings equal; there :func:`same_difference_interval` is used instead.
     """
     d = np.asarray(differences, dtype=float)
     if d.shape[-1] < 2:
@@ -76,7 +78,22 @@ def difference_interval(differences, alpha: float = 0.05) -> tuple[np.ndarray, n
         warnings.simplefilter("ignore", RuntimeWarning)  # constant rows: handled by `flat`
         ci = ttest_1samp(d, 0.0, axis=-1).confidence_interval(1 - alpha)
     mean = d.mean(axis=-1)
-    return np.where(flat, mean, ci.low), np.where(flat, mean, ci.high)
+    flat_low, flat_high = same_difference_interval(mean, d.shape[-1], alpha)
+    return np.where(flat, flat_low, ci.low), np.where(flat, flat_high, ci.high)
+
+
+def same_difference_interval(value, n: int, alpha: float = 0.05):
+    """Interval for the mean difference when all ``n`` questions showed the same ``value`` in [-1, 1].
+
+    No question departed from ``value``, yet some share of all questions might: at most ``u``,
+    the exact (Clopper-Pearson) upper bound for a share seen 0 times in ``n``,
+    ``u = 1 - (alpha / 2) ** (1 / n)``. Each such question moves the mean at most to -1 or +1,
+    so the mean lies in ``[value - u (value + 1), value + u (1 - value)]``: for ``value`` 0,
+    ``[-u, u]`` (6 agreeing questions: about [-0.46, 0.46]; 40: [-0.09, 0.09]).
+    """
+    u = 1.0 - (alpha / 2) ** (1.0 / n)
+    v = np.asarray(value, dtype=float)
+    return v - u * (v + 1.0), v + u * (1.0 - v)
 
 
 @dataclass(frozen=True)
@@ -207,6 +224,8 @@ def paired_comparison(
             raise DataError("groups: every question is in one group; clustering needs at least two groups")
         fit = sm.OLS(d, np.ones(n)).fit(cov_type="cluster", cov_kwds={"groups": codes}, use_t=True)
         c_low, c_high = fit.conf_int(alpha)[0]
+        if flat:  # no variation at all: the bound of same_difference_interval, counted in groups
+            c_low, c_high = same_difference_interval(float(d[0]), k, alpha)
         cluster = dict(n_clusters=k, cluster_se=float(fit.bse[0]), cluster_ci_low=float(c_low), cluster_ci_high=float(c_high))
     discordance = float(np.mean(d**2))
     return PairedComparison(

@@ -8,6 +8,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy.stats import binomtest, ttest_rel
+from statsmodels.stats.proportion import proportion_confint
 
 from evalkit.errors import DataError
 from evalkit.power import questions_needed
@@ -79,12 +80,31 @@ def test_averaged_scores_use_the_paired_t_test():
     assert (c.p_value < 0.05) == (c.ci_low > 0 or c.ci_high < 0)
 
 
-def test_identical_scores_give_a_point_interval_and_no_evidence():
+def test_identical_scores_give_no_evidence_and_an_honest_interval():
+    """Eight agreeing questions do not prove two settings equal: the interval is the exact
+    (Clopper-Pearson, statsmodels' "beta") bound on the share of questions that might disagree."""
     a = np.array([1, 0, 1, 1, 0, 0, 1, 0], dtype=float)
     c = paired_comparison(a, a.copy())
-    assert (c.ci_low, c.ci_high, c.difference) == (0.0, 0.0, 0.0)
+    u = proportion_confint(0, 8, alpha=0.05, method="beta")[1]  # statsmodels as reference
+    assert u == pytest.approx(0.369, abs=1e-3)  # 1 - 0.025 ** (1/8)
+    assert c.difference == 0.0 and (c.ci_low, c.ci_high) == (pytest.approx(-u), pytest.approx(u))
     assert c.p_value == 1.0 and not c.distinguishable
-    assert "same score on every question" in verdict_sentence(c)
+    assert "same score on every question" in verdict_sentence(c) and "[-36.9, 36.9]" in verdict_sentence(c)
+    # With groups the bound counts groups: four groups agreeing say less than eight questions.
+    g = paired_comparison(a, a.copy(), groups=["p", "p", "q", "q", "r", "r", "s", "s"])
+    u4 = proportion_confint(0, 4, alpha=0.05, method="beta")[1]
+    assert g.interval == (pytest.approx(-u4), pytest.approx(u4))
+
+
+@pytest.mark.parametrize("value", [1.0, -1.0, 0.5])
+def test_same_difference_everywhere_is_bounded_by_the_share_that_might_differ(value):
+    """All questions showed the same difference: the mean may still move towards -1 or +1 by the
+    share of questions that might differ (Clopper-Pearson upper bound for 0 of n, statsmodels)."""
+    n = 20
+    u = proportion_confint(0, n, alpha=0.05, method="beta")[1]
+    low, high = difference_interval(np.full(n, value))
+    assert low == pytest.approx(value - u * (value + 1)) and high == pytest.approx(value + u * (1 - value))
+    assert -1.0 <= low <= value <= high <= 1.0
 
 
 @pytest.mark.parametrize("a, b", [([1, 0, 1], [1, 0]), ([1, 0, 2], [1, 0, 1]), ([1, np.nan, 0], [1, 0, 0])])
