@@ -149,14 +149,17 @@ def test_cut_follows_plain_string_search(llama, llama_case):
 
 @pytest.mark.parametrize("batch_size", [1, 3, 8])
 @pytest.mark.parametrize("reuse_prefix", [True, False])
-@pytest.mark.parametrize("pack", [True, False], ids=["packed", "unpacked"])
+@pytest.mark.parametrize("form", ["mkl", "onednn", None], ids=["packed-mkl", "packed-onednn", "unpacked"])
 @pytest.mark.parametrize("direct_pass", [True, False], ids=["llama_pass", "model_call"])
-def test_engine_equals_reference(llama, llama_case, batch_size, reuse_prefix, pack, direct_pass,
+def test_engine_equals_reference(llama, llama_case, batch_size, reuse_prefix, form, direct_pass,
                                  monkeypatch):
     from evalkit.backends import linear_order, llama_pass
 
-    if pack and not linear_order.packing_available():
-        pytest.skip("this torch has no oneDNN packed linear operators")
+    pack = form is not None
+    if pack:
+        monkeypatch.setenv("EVALKIT_PACK", form)
+        if linear_order.packing_form() != form:
+            pytest.skip(f"this torch has no {form} packed linear operators")
     model, tok = llama
     stop, ref = llama_case
     calls, used = [], []
@@ -475,11 +478,13 @@ def test_transposed_output_projection_blocks_give_the_same_bits():
                                    rtol=1e-5, atol=1e-5)
 
 
-def test_packed_linears_equal_nn_linear_and_restore(llama):
+@pytest.mark.parametrize("form", ["mkl", "onednn"])
+def test_packed_linears_equal_nn_linear_and_restore(llama, form, monkeypatch):
     from evalkit.backends import linear_order
 
-    if not linear_order.packing_available():
-        pytest.skip("this torch has no oneDNN packed linear operators")
+    monkeypatch.setenv("EVALKIT_PACK", form)
+    if linear_order.packing_form() != form:
+        pytest.skip(f"this torch has no {form} packed linear operators")
     model = llama[0]
     lin = next(m for m in model.modules() if type(m) is torch.nn.Linear)
     head = model.get_output_embeddings()
@@ -499,11 +504,13 @@ def test_packed_linears_equal_nn_linear_and_restore(llama):
     assert "forward" not in vars(lin) and "forward" not in vars(head)
 
 
-def test_packed_weight_is_kept_and_packed_again_when_the_weight_changes():
+@pytest.mark.parametrize("form", ["mkl", "onednn"])
+def test_packed_weight_is_kept_and_packed_again_when_the_weight_changes(form, monkeypatch):
     from evalkit.backends import linear_order
 
-    if not linear_order.packing_available():
-        pytest.skip("this torch has no oneDNN packed linear operators")
+    monkeypatch.setenv("EVALKIT_PACK", form)
+    if linear_order.packing_form() != form:
+        pytest.skip(f"this torch has no {form} packed linear operators")
     lin = torch.nn.Linear(16, 40)
     first = linear_order.packed_weight(lin)
     assert linear_order.packed_weight(lin) is first  # made once
@@ -522,6 +529,47 @@ def test_packed_weight_is_kept_and_packed_again_when_the_weight_changes():
     lin.weight.data = torch.randn(40, 16)  # same tensor object, new data
     assert linear_order.packed_weight(lin) is not third
     with linear_order.engine_linears(lin, pack=True):
+        got = lin(x)
+    torch.testing.assert_close(got, torch.nn.functional.linear(x, lin.weight, lin.bias), rtol=1e-5, atol=1e-5)
+
+
+def test_packing_form_by_vendor_and_by_hand(monkeypatch):
+    from evalkit.backends import linear_order
+
+    monkeypatch.delenv("EVALKIT_PACK", raising=False)
+    if not (linear_order._form_available("mkl") and linear_order._form_available("onednn")):
+        pytest.skip("this torch lacks MKL's or oneDNN's packed linear operators")
+    monkeypatch.setattr(linear_order, "_cpu_vendor", lambda: "GenuineIntel")
+    assert linear_order.packing_form() == "mkl"
+    monkeypatch.setattr(linear_order, "_cpu_vendor", lambda: "AuthenticAMD")
+    assert linear_order.packing_form() == "onednn"  # MKL's packed products not measured there
+    for choice, expected in (("mkl", "mkl"), ("ONEDNN", "onednn"), ("none", None), ("fast", None)):
+        monkeypatch.setenv("EVALKIT_PACK", choice)
+        assert linear_order.packing_form() == expected and linear_order.packing_available() == (expected is not None)
+
+
+def test_mkl_packing_is_checked_before_use_and_oneDNN_taken_if_it_disagrees(llama, monkeypatch):
+    """MKL's packed weight is made for 512 rows and used at any row count; before a model's first
+    use the engine checks it against x @ W.T (torch's nn.Linear as the reference)."""
+    from evalkit.backends import linear_order
+
+    monkeypatch.setenv("EVALKIT_PACK", "mkl")
+    if not (linear_order._form_available("mkl") and linear_order._form_available("onednn")):
+        pytest.skip("this torch lacks MKL's or oneDNN's packed linear operators")
+    fresh = AutoModelForCausalLM.from_config(llama[0].config).eval()
+    assert linear_order.mkl_packing_agrees(fresh)
+    lin = next(m for m in fresh.modules() if type(m) is torch.nn.Linear)
+    with linear_order.engine_linears(fresh, pack=True):
+        assert lin.forward.keywords["form"] == "mkl"
+    # A layout that depended on the row count would give wrong products: then oneDNN is used.
+    other = AutoModelForCausalLM.from_config(llama[0].config).eval()
+    real = linear_order._mkl_product
+    monkeypatch.setattr(linear_order, "_mkl_product", lambda m, x, p: real(m, x, p) + (x.shape[0] == 17))
+    assert not linear_order.mkl_packing_agrees(other)
+    lin = next(m for m in other.modules() if type(m) is torch.nn.Linear)
+    x = torch.randn(5, lin.in_features)
+    with linear_order.engine_linears(other, pack=True):
+        assert lin.forward.keywords["form"] == "onednn"
         got = lin(x)
     torch.testing.assert_close(got, torch.nn.functional.linear(x, lin.weight, lin.bias), rtol=1e-5, atol=1e-5)
 

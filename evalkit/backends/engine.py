@@ -14,8 +14,9 @@ How a call runs:
    similar length, so little padding is computed) and merged into
    the running batch in the freed rows; once nobody waits, ended rows are dropped likewise.
    (Ended rows run along until then; their tokens are ignored.)
-4. While the call lasts, float32 linear layers run through oneDNN on packed copies of their
-   weights, made once per model where memory allows; otherwise as ``W @ x.T``, faster for the
+4. While the call lasts, float32 linear layers run on packed copies of their weights (MKL's
+   packed products on Intel CPUs, oneDNN's elsewhere), made once per model where memory
+   allows; otherwise as ``W @ x.T``, faster for the
    few-row products of decoding on MKL; a single row as one slice of the weight per thread
    (:mod:`evalkit.backends.linear_order`).
 5. Llama-architecture models run their submodules directly (:mod:`evalkit.backends.llama_pass`):

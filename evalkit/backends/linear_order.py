@@ -1,9 +1,26 @@
-"""How the engine computes linear layers: oneDNN with packed weights, else ``W @ x.T``.
+"""How the engine computes linear layers: on packed weights (MKL's or oneDNN's), else ``W @ x.T``.
 
-Float32 (the default path): each plain ``nn.Linear`` runs through oneDNN, the CPU kernel
-library bundled with torch, on a copy of its weight that oneDNN has laid out ("packed") in
-its own blocked format once (:func:`packed_weight`; kept while the module lives and its
-weight is unchanged). Measured here on SmolLM2-135M against the ``W @ x.T`` form below, variants
+Float32 (the default path): each plain ``nn.Linear`` runs on a copy of its weight that a CPU
+kernel library bundled with torch has laid out ("packed") in its own blocked format once
+(:func:`packed_weight`; kept while the module lives and its weight is unchanged). Which library
+(:func:`packing_form`): on Intel CPUs MKL's packed matrix product (``cblas_sgemm_pack`` /
+``cblas_sgemm_compute``, reached through ``torch.ops.mkl``), elsewhere oneDNN's. Measured on the
+2-core Intel Xeon (AVX-512, 2026-12-04), SmolLM2-135M's 211 products with weights read from
+memory, oneDNN against MKL packed: 2 rows 29.5 vs 23.2 ms, 8 rows 32.8 vs 31.0, 32 rows 51.1 vs
+46.2, 64 rows 75.2 vs 63.7, 128 rows 114.1 vs 97.7, 512 rows 375.4 vs 345.3 (best of 5); whole
+engine runs of 64 questions, 4 alternated each: worked 13.41 vs 12.42 s, direct 5.10 vs 4.78 s,
+decode steps at 128 rows 209.7 vs 188.3 ms (median of 30), the same completions. On AMD CPUs MKL
+packed is not measured, so they keep oneDNN, measured there as below. ``EVALKIT_PACK=onednn``,
+``mkl`` or ``none`` chooses by hand (A/B runs).
+
+MKL's packed copy is made once for 512 rows (torch's ``_mkl_reorder_linear_weight``) and used
+at whatever row count a product has, which torch's wrapper would otherwise refuse (it falls back
+to an unpacked product when the rows differ from the packing hint). MKL lays out the packed
+weight for the weight alone; before a model's first use the engine checks that, computing each
+weight shape's packed product at several row counts against ``x @ W.T``
+(:func:`mkl_packing_agrees`), and uses oneDNN for that model if any result disagrees.
+
+oneDNN: measured on the AVX-512 AMD machine on SmolLM2-135M against the ``W @ x.T`` form below, variants
 alternated in one process, 4 runs each, same completions: worked run of 32 questions 30.2 vs
 33.1 s median (faster in every pair) and, in a second A/B, 28.4 vs 31.9 s; direct run of 64
 questions 16.4 vs 16.8 s and 17.4 vs 17.4 s (no clear difference); decode at 128 rows 201-217 vs
@@ -44,13 +61,14 @@ from __future__ import annotations
 
 import contextlib
 import functools
+import os
 import weakref
 
 import torch
 from torch import nn
 
-__all__ = ["engine_linears", "MAX_TRANSPOSED_ROWS", "one_row", "packable_linears", "packed_weight",
-           "padded_rows", "should_pack"]
+__all__ = ["engine_linears", "MAX_TRANSPOSED_ROWS", "mkl_packing_agrees", "one_row", "packable_linears",
+           "packed_weight", "packing_available", "packing_form", "padded_rows", "should_pack"]
 
 MAX_TRANSPOSED_ROWS = 256  # measured crossover: at 512 rows and more nn.Linear's own form was faster
 CONTIGUOUS_BLOCK = 2048    # output rows per block when a product must come out laid out in rows (logits):
@@ -58,12 +76,16 @@ CONTIGUOUS_BLOCK = 2048    # output rows per block when a product must come out 
                            # 79 vs 132 ms (measured here; 1024 and 4096 alike)
 MIN_BLOCKED_ROWS = 9       # fewer rows: one whole transpose is cheap (at 2 rows 10.9 ms against 11.6 in blocks;
                            # at 8 rows blocks saved 2 ms of 20, within noise)
-PACK_HINT_ROWS = 512       # rows oneDNN lays the packed weight out for; measured on SmolLM2's layer weights,
+PACK_HINT_ROWS = 512       # rows the packed weight is laid out for; measured on SmolLM2's layer weights (oneDNN),
                            # as fast as packing for the actual row count at 2-128 rows, faster at 448
+MKL_CHECK_ROWS = (2, 3, 17, 64, 129)  # row counts at which MKL's packed products are checked before first use
+FORMS = ("mkl", "onednn")
 PACK_MEMORY_FRACTION = 0.25  # pack only when the packed copies take at most this share of available memory
 
-# module -> ((weakref to its weight, storage address, version), packed copy)
+# module -> ((weakref to its weight, storage address, version, form), packed copy)
 _packed: "weakref.WeakKeyDictionary[nn.Linear, tuple[tuple, torch.Tensor]]" = weakref.WeakKeyDictionary()
+# model -> whether MKL's packed products agreed with x @ W.T on its weights
+_mkl_checked: "weakref.WeakKeyDictionary[nn.Module, bool]" = weakref.WeakKeyDictionary()
 
 
 def _can_pack(m: nn.Module) -> bool:
@@ -75,37 +97,116 @@ def packable_linears(model: nn.Module) -> list[nn.Linear]:
     return [m for m in model.modules() if _can_pack(m)]
 
 
+def _form_available(form: str) -> bool:
+    if form == "onednn":
+        ops = getattr(torch.ops, "mkldnn", None)
+        return bool(torch.backends.mkldnn.is_available() and ops is not None
+                    and hasattr(ops, "_reorder_linear_weight") and hasattr(ops, "_linear_pointwise"))
+    if form == "mkl":
+        ops = getattr(torch.ops, "mkl", None)
+        return bool(torch.backends.mkl.is_available() and ops is not None
+                    and hasattr(ops, "_mkl_reorder_linear_weight") and hasattr(ops, "_mkl_linear"))
+    return False
+
+
+@functools.lru_cache(maxsize=1)
+def _cpu_vendor() -> str:
+    try:
+        with open("/proc/cpuinfo") as f:
+            for line in f:
+                if line.startswith("vendor_id"):
+                    return line.split(":", 1)[1].strip()
+    except OSError:
+        pass
+    return ""
+
+
+def packing_form() -> str | None:
+    """Which packed products this machine's engine uses: ``"mkl"`` on Intel CPUs where torch has
+    MKL's packed operators, else ``"onednn"`` where it has oneDNN's, else None (no packing).
+    ``EVALKIT_PACK`` (``mkl``, ``onednn`` or ``none``) overrides; an unavailable choice is None."""
+    choice = os.environ.get("EVALKIT_PACK", "").strip().lower()
+    if choice:
+        return choice if choice in FORMS and _form_available(choice) else None
+    if _cpu_vendor() == "GenuineIntel" and _form_available("mkl"):
+        return "mkl"
+    return "onednn" if _form_available("onednn") else None
+
+
 def packing_available() -> bool:
-    """Whether this torch has oneDNN and its packed linear operators."""
-    ops = getattr(torch.ops, "mkldnn", None)
-    return bool(torch.backends.mkldnn.is_available() and ops is not None
-                and hasattr(ops, "_reorder_linear_weight") and hasattr(ops, "_linear_pointwise"))
+    """Whether this torch can pack float32 linear weights here (:func:`packing_form`)."""
+    return packing_form() is not None
 
 
-def packed_weight(m: nn.Linear) -> torch.Tensor:
-    """oneDNN's packed copy of ``m.weight``, made once and reused while the weight is unchanged.
+def _pack(w: torch.Tensor, form: str) -> torch.Tensor:
+    with torch.no_grad():
+        if form == "mkl":
+            return torch.ops.mkl._mkl_reorder_linear_weight(w.detach().contiguous(), PACK_HINT_ROWS)
+        return torch.ops.mkldnn._reorder_linear_weight(w.detach(), PACK_HINT_ROWS)
+
+
+def packed_weight(m: nn.Linear, form: str | None = None) -> torch.Tensor:
+    """The packed copy of ``m.weight`` in ``form`` (default :func:`packing_form`), made once and
+    reused while the weight is unchanged.
 
     Keyed by the module (weakly: the copy goes with the model) and checked against the weight
-    tensor itself, its storage and its version counter, so a weight replaced (even by one that
-    lands at the same address), given new data or changed in place is packed again.
+    tensor itself, its storage, its version counter and the form, so a weight replaced (even by
+    one that lands at the same address), given new data or changed in place is packed again.
     """
+    form = form or packing_form() or "onednn"
     w = m.weight
     hit = _packed.get(m)
     if hit is not None:
-        (ref, ptr, version), packed = hit
-        if ref() is w and ptr == w.data_ptr() and version == w._version:
+        (ref, ptr, version, made_as), packed = hit
+        if ref() is w and ptr == w.data_ptr() and version == w._version and made_as == form:
             return packed
-    with torch.no_grad():
-        packed = torch.ops.mkldnn._reorder_linear_weight(w.detach(), PACK_HINT_ROWS)
-    _packed[m] = ((weakref.ref(w), w.data_ptr(), w._version), packed)
+    packed = _pack(w, form)
+    _packed[m] = ((weakref.ref(w), w.data_ptr(), w._version, form), packed)
     return packed
+
+
+def _mkl_product(self: nn.Linear, x2: torch.Tensor, packed: torch.Tensor) -> torch.Tensor:
+    """``x2 @ W.T`` (+ bias) on MKL's packed weight, for a contiguous [rows, in] ``x2``."""
+    return torch.ops.mkl._mkl_linear(x2, packed, self.weight, self.bias, x2.shape[0])
+
+
+def mkl_packing_agrees(model: nn.Module) -> bool:
+    """Whether MKL's packed products on ``model``'s weights equal ``x @ W.T`` to float32 rounding.
+
+    One layer of each weight shape, at each of :data:`MKL_CHECK_ROWS`, on seeded random inputs;
+    remembered per model. Measured here (SmolLM2-135M, all 211 weights, 1-256 rows): largest
+    error 1.1e-6 of the largest output, against 0.9e-6 for ``x @ W.T`` itself, both against
+    float64; a layout that depended on the row count would be off by the outputs' own size.
+    """
+    known = _mkl_checked.get(model)
+    if known is not None:
+        return known
+    g = torch.Generator().manual_seed(0)
+    seen, ok = set(), True
+    with torch.inference_mode():
+        for m in packable_linears(model):
+            if tuple(m.weight.shape) in seen:
+                continue
+            seen.add(tuple(m.weight.shape))
+            packed = packed_weight(m, "mkl")
+            for rows in MKL_CHECK_ROWS:
+                x = torch.randn(rows, m.in_features, generator=g)
+                ref = nn.functional.linear(x, m.weight, m.bias)
+                scale = float(ref.abs().max()) or 1.0
+                if not bool(((_mkl_product(m, x, packed) - ref).abs() <= 1e-4 * scale).all()):
+                    ok = False
+                    break
+            if not ok:
+                break
+    _mkl_checked[model] = ok
+    return ok
 
 
 def should_pack(model: nn.Module, available_bytes: int) -> bool:
     """Whether the engine should use packed float32 weights for ``model``.
 
-    Yes when oneDNN is there, the model has float32 plain linear layers, and the copies not
-    packed yet take at most :data:`PACK_MEMORY_FRACTION` of ``available_bytes``.
+    Yes when packed products are available (:func:`packing_form`), the model has float32 plain linear
+    layers, and the copies not packed yet take at most :data:`PACK_MEMORY_FRACTION` of ``available_bytes``.
     """
     if not packing_available():
         return False
@@ -164,14 +265,18 @@ def _product(weight: torch.Tensor, bias: torch.Tensor | None, xt: torch.Tensor) 
     return torch.mm(weight, xt)
 
 
-def _packed_forward(self: nn.Linear, x: torch.Tensor, packed: torch.Tensor) -> torch.Tensor:
+def _packed_forward(self: nn.Linear, x: torch.Tensor, packed: torch.Tensor, form: str = "onednn") -> torch.Tensor:
     if x.dtype != torch.float32 or x.numel() == 0:
         return nn.functional.linear(x, self.weight, self.bias)
     y = _one_row_or_none(self, x)
     if y is not None:
         return y
     k = x.shape[-1]
-    y = torch.ops.mkldnn._linear_pointwise(x.reshape(-1, k).contiguous(), packed, self.bias, "none", [], "")
+    x2 = x.reshape(-1, k).contiguous()
+    if form == "mkl":
+        y = _mkl_product(self, x2, packed)
+    else:
+        y = torch.ops.mkldnn._linear_pointwise(x2, packed, self.bias, "none", [], "")
     return y.reshape(*x.shape[:-1], y.shape[-1])  # laid out in rows, as logits want
 
 
@@ -209,19 +314,23 @@ def _forward(self: nn.Linear, x: torch.Tensor, contiguous: bool = False) -> torc
 def engine_linears(model: nn.Module, pack: bool = False):
     """Within the block, the model's plain ``nn.Linear`` layers use the engine's forms.
 
-    With ``pack``, float32 layers run through oneDNN on packed weights (:func:`packed_weight`);
-    the others, and all of them without ``pack``, use the ``W @ x.T`` form. Yields the number
-    of layers swapped.
+    With ``pack``, float32 layers run on packed weights (:func:`packed_weight`), in the form
+    :func:`packing_form` names (MKL's only after :func:`mkl_packing_agrees` on this model, else
+    oneDNN's); the others, and all of them without ``pack``, use the ``W @ x.T`` form. Yields the
+    number of layers swapped.
     """
     swapped = []
     head = model.get_output_embeddings() if hasattr(model, "get_output_embeddings") else None
-    pack = pack and packing_available()
+    form = packing_form() if pack else None
+    if form == "mkl" and not mkl_packing_agrees(model):
+        form = "onednn" if _form_available("onednn") else None
+    pack = form is not None
     for m in model.modules():
         # Only plain float linear layers: subclasses (quantized, LoRA, ...) keep their own forward.
         if type(m) is nn.Linear and "forward" not in vars(m) and m.weight.dim() == 2 \
                 and m.weight.is_floating_point():
             if pack and _can_pack(m):
-                m.forward = functools.partial(_packed_forward, m, packed=packed_weight(m))
+                m.forward = functools.partial(_packed_forward, m, packed=packed_weight(m, form), form=form)
             else:
                 # Logits are scanned along the vocabulary, which wants them contiguous; other
                 # outputs feed element-wise ops and views, which take the transposed layout as is.
