@@ -155,13 +155,14 @@ def plan(accuracy: float, difference: float, discordance: float | None = None, a
 
 
 def probe(run_dir: str | Path, limit: int | None = None, seed: int = 0, progress: bool = True,
-          backend_factory=None):
-    """Early-answering and injected-mistake probes of a run's chains; returns change rates per condition."""
-    from .probes import probe_rates, probe_run
+          backend_factory=None, as_text: bool = False):
+    """Early-answering and injected-mistake probes of a run's chains; returns change rates per
+    condition (shares; with ``as_text``, each as text with its 95% Wilson interval)."""
+    from .probes import probe_intervals, probe_rates, probe_run
     from .report.build import write_reports
     from .run import load_run
 
     probes = probe_run(run_dir, backend_factory=backend_factory, limit=limit, seed=seed, progress=progress)
     run = load_run(run_dir)
     write_reports(run)
-    return probe_rates(probes, run.records)
+    return (probe_intervals if as_text else probe_rates)(probes, run.records)

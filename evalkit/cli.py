@@ -203,12 +203,11 @@ def probe(
     """Faithfulness probes: answer early from a cut chain, and continue after an injected mistake."""
     from . import api
 
-    table = api.probe(run_dir, limit=limit, seed=seed)
+    table = api.probe(run_dir, limit=limit, seed=seed, as_text=True)
     if table.empty:
         out.print("no reasoning records with arithmetic steps to probe")
         return
-    out.print(_frame_table(table, "share of answers that changed under each probe",
-                           lambda v: f"{100 * v:.0f}%" if isinstance(v, float) else str(v)))
+    out.print(_frame_table(table, "share of answers that changed under each probe (95% Wilson interval)"))
 
 
 @command

@@ -29,8 +29,9 @@ from .answers import extract_answer, parse_number
 from .audit import inject_mistake, truncate_chain
 from .steps import find_steps
 from .store import RunStore
+from .stats import accuracy_interval
 
-__all__ = ["FRACTIONS", "ANSWER_CUE", "ProbeRequest", "plan_probes", "probe_run", "probe_rates"]
+__all__ = ["FRACTIONS", "ANSWER_CUE", "ProbeRequest", "plan_probes", "probe_intervals", "probe_run", "probe_rates"]
 
 FRACTIONS = (0.0, 0.25, 0.5, 0.75, 1.0)
 ANSWER_CUE = " The answer is"
@@ -165,15 +166,14 @@ def _groups(requests: list[ProbeRequest]) -> dict[tuple[int, tuple[str, ...]], l
     return groups
 
 
-def probe_rates(probes: pd.DataFrame, records: pd.DataFrame) -> pd.DataFrame:
-    """How often the answer changed, per condition: one column per early-answering cut, one for mistakes."""
-    if probes.empty:
-        return pd.DataFrame()
+def _probe_table(probes: pd.DataFrame, records: pd.DataFrame, cell) -> pd.DataFrame:
+    """Per condition: ``cell(changed flags)`` for each early-answering cut and for mistakes,
+    after the condition's label and its number of probed chains."""
     labels = records.drop_duplicates("condition_id").set_index("condition_id")["condition"]
     p = probes.copy()
     p["column"] = [f"early {int(round(100 * f))}%" if k == "early" else "injected mistake"
                    for k, f in zip(p["probe"], p["fraction"])]
-    table = p.pivot_table(index="condition_id", columns="column", values="changed", aggfunc="mean", sort=False)
+    table = p.pivot_table(index="condition_id", columns="column", values="changed", aggfunc=cell, sort=False)
     order = [f"early {int(round(100 * f))}%" for f in sorted(set(p.loc[p["probe"] == "early", "fraction"]))]
     table = table[[c for c in order + ["injected mistake"] if c in table.columns]]
     counts = p[p["probe"] == "early"].groupby("condition_id")["question_id"].nunique()
@@ -181,3 +181,23 @@ def probe_rates(probes: pd.DataFrame, records: pd.DataFrame) -> pd.DataFrame:
     table.insert(0, "condition", labels.reindex(table.index).to_numpy())
     table.columns.name = None
     return table.reset_index(drop=True)
+
+
+def probe_rates(probes: pd.DataFrame, records: pd.DataFrame) -> pd.DataFrame:
+    """How often the answer changed, per condition: one column per early-answering cut, one for mistakes."""
+    if probes.empty:
+        return pd.DataFrame()
+    return _probe_table(probes, records, "mean")
+
+
+def _share_with_interval(changed: pd.Series) -> str:
+    iv = accuracy_interval(int(changed.sum()), len(changed))
+    return f"{100 * iv.estimate:.0f}% [{100 * iv.low:.0f}, {100 * iv.high:.0f}]"
+
+
+def probe_intervals(probes: pd.DataFrame, records: pd.DataFrame) -> pd.DataFrame:
+    """:func:`probe_rates` as text for reports: each share with its 95% Wilson interval, e.g.
+    ``17% [3, 56]`` (1 of 6 chains): a handful of chains says little."""
+    if probes.empty:
+        return pd.DataFrame()
+    return _probe_table(probes, records, _share_with_interval)

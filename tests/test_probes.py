@@ -59,3 +59,26 @@ def test_change_rates(run_dir, faithful):
         assert row["early 0%"] == 0.0 and row["injected mistake"] == 0.0
     assert "## Faithfulness probes" in (run_dir / "report.md").read_text()
     assert 'id="probe-table"' in (run_dir / "report.html").read_text()
+
+
+def test_report_text_gives_each_share_its_wilson_interval(run_dir):
+    """Two chains say little: each share in the reports carries its 95% Wilson interval
+    (statsmodels' proportion_confint as the reference)."""
+    from statsmodels.stats.proportion import proportion_confint
+
+    from evalkit.probes import probe_intervals
+    from evalkit.run import load_run
+    from evalkit.store import RunStore
+
+    api.probe(run_dir, backend_factory=make_factory(True), progress=False)
+    with RunStore.open_run(run_dir) as store:
+        probes = store.probes()
+    text = probe_intervals(probes, load_run(run_dir).records).iloc[0]
+    low, high = proportion_confint(2, 2, alpha=0.05, method="wilson")
+    assert text["early 0%"] == f"100% [{100 * low:.0f}, {100 * high:.0f}]" == "100% [34, 100]"
+    low, high = proportion_confint(0, 2, alpha=0.05, method="wilson")
+    assert text["early 100%"] == f"0% [0, {100 * high:.0f}]" == "0% [0, 66]"
+    assert "| 100% [34, 100] |" in (run_dir / "report.md").read_text()
+    assert "100% [34, 100]" in (run_dir / "report.html").read_text()
+    cli = api.probe(run_dir, backend_factory=make_factory(True), progress=False, as_text=True)
+    assert cli.iloc[0]["early 0%"] == "100% [34, 100]"

@@ -35,12 +35,13 @@ def _verdicts(run) -> pd.DataFrame | None:
 
 
 def _probe_rates(run) -> pd.DataFrame | None:
-    from ..probes import probe_rates
+    """The probes' change rates as report text, each with its interval."""
+    from ..probes import probe_intervals
     from ..store import RunStore
 
     with RunStore.open_run(run.folder) as store:
         probes = store.probes()
-    return probe_rates(probes, run.records) if not probes.empty else None
+    return probe_intervals(probes, run.records) if not probes.empty else None
 
 
 def report_parts(run, plots: bool = True) -> ReportParts:

@@ -151,7 +151,8 @@ def _probe_section(rates: pd.DataFrame | None) -> list[str]:
     out = ["## Faithfulness probes", "",
            "Share of answers that changed from the record's own answer (Lanham et al., 2023): when the chain is cut "
            "after 0-100% of its steps and the model must answer at once, and when one step's result is changed and "
-           "the model continues. An answer that rarely changes when the chain is cut or corrupted did not depend on it.",
+           "the model continues. An answer that rarely changes when the chain is cut or corrupted did not depend on it. "
+           "Each share has its 95% Wilson interval: a handful of chains says little.",
            "", "| " + " | ".join(rates.columns) + " |", "| --- |" + " ---: |" * (len(rates.columns) - 1)]
     for row in rates.itertuples(index=False):
         out.append("| " + " | ".join(f"{100 * v:.0f}%" if isinstance(v, float) else _cell(v) for v in row) + " |")
