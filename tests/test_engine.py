@@ -719,3 +719,22 @@ def test_llama_pass_only_where_it_computes_the_same(llama, tmp_path):
     gemma, _ = _load(build_tiny_model(tmp_path, arch="gemma3", seed=0))
     gemma.config._attn_implementation = ATTENTION_NAME
     assert not llama_pass.applies(gemma)
+
+
+@pytest.mark.parametrize("choice, expected", [("mkl", "MKL packed"), ("onednn", "oneDNN packed"), ("none", "W @ x.T")])
+def test_layer_form_names_what_the_engine_will_use(llama, choice, expected, monkeypatch):
+    """The manifest records the linear layers' form (it can move near-ties): the same choice
+    engine_linears makes."""
+    from evalkit.backends import linear_order
+
+    monkeypatch.setenv("EVALKIT_PACK", choice)
+    if choice != "none" and linear_order.packing_form() != choice:
+        pytest.skip(f"this torch has no {choice} packed linear operators")
+    model = llama[0]
+    assert linear_order.layer_form(model, available_bytes=1 << 40) == expected
+    lin = next(m for m in model.modules() if type(m) is torch.nn.Linear)
+    with linear_order.engine_linears(model, pack=expected != "W @ x.T"):
+        form = lin.forward.keywords.get("form")
+    assert {"mkl": "MKL packed", "onednn": "oneDNN packed", None: "W @ x.T"}[form] == expected
+    bf = AutoModelForCausalLM.from_config(model.config).eval().to(torch.bfloat16)
+    assert linear_order.layer_form(bf, available_bytes=1 << 40) == "W @ x.T"

@@ -67,7 +67,7 @@ import weakref
 import torch
 from torch import nn
 
-__all__ = ["engine_linears", "MAX_TRANSPOSED_ROWS", "mkl_packing_agrees", "one_row", "packable_linears",
+__all__ = ["engine_linears", "layer_form", "MAX_TRANSPOSED_ROWS", "mkl_packing_agrees", "one_row", "packable_linears",
            "packed_weight", "packing_available", "packing_form", "padded_rows", "should_pack"]
 
 MAX_TRANSPOSED_ROWS = 256  # measured crossover: at 512 rows and more nn.Linear's own form was faster
@@ -200,6 +200,18 @@ def mkl_packing_agrees(model: nn.Module) -> bool:
                 break
     _mkl_checked[model] = ok
     return ok
+
+
+def layer_form(model: nn.Module, available_bytes: int) -> str:
+    """What the engine's float32 linear layers of ``model`` run on, in words, as
+    :func:`engine_linears` would choose with :func:`should_pack`: ``"MKL packed"``,
+    ``"oneDNN packed"`` or ``"W @ x.T"`` (recorded in the manifest: the form can move near-ties)."""
+    if not should_pack(model, available_bytes):
+        return "W @ x.T"
+    form = packing_form()
+    if form == "mkl" and not mkl_packing_agrees(model):
+        form = "onednn" if _form_available("onednn") else None
+    return {"mkl": "MKL packed", "onednn": "oneDNN packed", None: "W @ x.T"}[form]
 
 
 def should_pack(model: nn.Module, available_bytes: int) -> bool:

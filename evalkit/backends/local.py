@@ -39,6 +39,9 @@ class LocalBackend:
         return bos if ids and ids[0] == tok.bos_token_id else ""
 
     def describe(self) -> dict:
+        from .engine import _mem_available
+        from .linear_order import layer_form
+
         src = self.loaded.source
         return {
             "backend": "local",
@@ -49,6 +52,7 @@ class LocalBackend:
             "sha256": src.sha256,
             "dtype": self.loaded.dtype,
             "threads": self.loaded.threads,
+            "linear_layers": layer_form(self.model, _mem_available()),
             "chat_template": self.chat,
             "parameters": self.loaded.n_parameters,
             "non_embedding_parameters": self.loaded.n_non_embedding_parameters,

@@ -187,7 +187,8 @@ def render_report(run, parts=None) -> str:
         desc = f"{params:,} parameters, " if isinstance(params, int) else ""
         lines.append(f"- **{name}**: {desc}backend {info.get('backend')}, dtype {info.get('dtype')}, "
                      f"{'chat template' if info.get('chat_template') else 'plain text'}, sha256 {sha}…, "
-                     f"{info.get('threads')} threads")
+                     f"{info.get('threads')} threads"
+                     + (f", linear layers {info['linear_layers']}" if info.get("linear_layers") else ""))
         if info.get("dtype") == "bfloat16":
             lines.append("  - **Reduced precision (bfloat16) was used**: greedy answers can differ from float32.")
     d = m.get("decoding", {})
